@@ -1,0 +1,453 @@
+"""Compiled cores: the predict-gate-update-decide loop over a merged event array.
+
+One implementation serves `fusion.Fuser.push` (an array of one event) and batch replay
+(arrays of millions). Python objects describe the rig; these loops do the work. State is
+held in plain arrays owned by the caller so a run can be continued chunk after chunk.
+
+References
+----------
+R. E. Kalman, "A new approach to linear filtering and prediction problems", J. Basic
+Eng. 82, 35-45 (1960).
+Y. Bar-Shalom, X. R. Li, T. Kirubarajan, *Estimation with Applications to Tracking and
+Navigation*, Wiley (2001): Joseph-form update (§5.2), NIS gating (§5.4), the
+white-acceleration model (§6.2).
+D. L. Alspach, H. W. Sorenson, "Nonlinear Bayesian estimation using Gaussian sum
+approximations", IEEE Trans. Automatic Control 17(4), 439-448 (1972): the Gaussian sum
+that keeps both near-zone hypotheses.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+# Keep in step with fusion.decisions (numba needs plain constants).
+ACCEPTED, AMBIGUOUS, REACQUIRED = 0, 1, 2
+FIRST_REJECT, HELD, DROPOUT, OUT_OF_RANGE, CROSSTALK, GATED, INVALID, LATE = 3, 3, 4, 5, 6, 7, 8, 9
+FLAG_CROSSTALK_SUSPECT = 2
+FLAG_R_INFLATED = 4
+KIND_IR, KIND_ECHO = 0, 1
+
+# Indices into the parameter vector (see fusion.fuser._params).
+P_Q, P_GATE, P_K, P_PRUNE, P_NEAR_PRIOR, P_AMB, P_OUTLIER, P_REACQ_N, P_REACQ_W, \
+    P_MAX_LAG, P_INIT_RATE, P_MERGE = range(12)
+N_PARAMS = 12
+RB = 16  # re-acquisition buffer length per direction
+MAXC = 8
+LOG_2PI = math.log(2.0 * math.pi)
+
+
+def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
+    """Fresh estimator state arrays for `kalman_run`."""
+    return {
+        "W": np.zeros((n_dir, MAXC)),          # log weights would drift; keep linear, normalised
+        "X": np.zeros((n_dir, MAXC, 2)),
+        "P": np.zeros((n_dir, MAXC, 2, 2)),
+        "NH": np.zeros(n_dir, np.int64),
+        "T": np.full(n_dir, -np.inf),
+        "RBT": np.zeros((n_dir, RB)), "RBZ": np.zeros((n_dir, RB)), "RBV": np.zeros((n_dir, RB)),
+        "RBN": np.zeros(n_dir, np.int64),
+        "LAST_RAW": np.full(n_sensor, np.nan), "LAST_NEW_T": np.full(n_sensor, -np.inf),
+    }
+
+
+@njit(cache=True, inline="always")
+def _predict(x, P, dt, q):
+    # White-acceleration constant-velocity model (Bar-Shalom et al. 2001, §6.2.2).
+    x0 = x[0] + dt * x[1]
+    p00 = P[0, 0] + dt * (P[0, 1] + P[1, 0]) + dt * dt * P[1, 1] + q * dt ** 3 / 3.0
+    p01 = P[0, 1] + dt * P[1, 1] + q * dt * dt / 2.0
+    p11 = P[1, 1] + q * dt
+    x[0] = x0
+    P[0, 0] = p00
+    P[0, 1] = p01
+    P[1, 0] = p01
+    P[1, 1] = p11
+
+
+@njit(cache=True, inline="always")
+def _joseph(x, P, z, r, xo, Po):
+    # Joseph form (I-KH) P (I-KH)' + K R K' keeps P symmetric positive definite.
+    s = P[0, 0] + r
+    k0 = P[0, 0] / s
+    k1 = P[1, 0] / s
+    y = z - x[0]
+    xo[0] = x[0] + k0 * y
+    xo[1] = x[1] + k1 * y
+    a00 = 1.0 - k0
+    a10 = -k1
+    # A = [[a00, 0], [a10, 1]]; A P A'
+    p00 = a00 * a00 * P[0, 0]
+    p01 = a00 * (a10 * P[0, 0] + P[1, 0])
+    p11 = a10 * a10 * P[0, 0] + 2.0 * a10 * P[0, 1] + P[1, 1]
+    Po[0, 0] = p00 + k0 * k0 * r
+    Po[0, 1] = p01 + k0 * k1 * r
+    Po[1, 0] = Po[0, 1]
+    Po[1, 1] = p11 + k1 * k1 * r
+
+
+@njit(cache=True)
+def _moments(W, X, P, nh, out):
+    m0 = 0.0
+    m1 = 0.0
+    for k in range(nh):
+        m0 += W[k] * X[k, 0]
+        m1 += W[k] * X[k, 1]
+    p00 = 0.0
+    p01 = 0.0
+    p11 = 0.0
+    for k in range(nh):
+        d0 = X[k, 0] - m0
+        d1 = X[k, 1] - m1
+        p00 += W[k] * (P[k, 0, 0] + d0 * d0)
+        p01 += W[k] * (P[k, 0, 1] + d0 * d1)
+        p11 += W[k] * (P[k, 1, 1] + d1 * d1)
+    out[0] = m0
+    out[1] = m1
+    out[2] = p00
+    out[3] = p01
+    out[4] = p11
+
+
+@njit(cache=True)
+def _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH):
+    n = 0
+    has0 = not math.isnan(z[0])
+    has1 = not math.isnan(z[1])
+    for c in range(2):
+        if math.isnan(z[c]):
+            continue
+        X[d, n, 0] = z[c]
+        X[d, n, 1] = 0.0
+        P[d, n, 0, 0] = sg[c] * sg[c]
+        P[d, n, 0, 1] = 0.0
+        P[d, n, 1, 0] = 0.0
+        P[d, n, 1, 1] = init_rate * init_rate
+        if has0 and has1:
+            W[d, n] = near_prior if c == 1 else 1.0 - near_prior
+        else:
+            W[d, n] = 1.0
+        n += 1
+    NH[d] = n
+    return n
+
+
+@njit(cache=True)
+def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, out):
+    """Consistent rejected readings: a weighted line through them fits within 3 sigma."""
+    # drop entries older than the window (buffer is kept in time order)
+    n = RBN[d]
+    j = 0
+    for i in range(n):
+        if t - RBT[d, i] <= window:
+            RBT[d, j] = RBT[d, i]
+            RBZ[d, j] = RBZ[d, i]
+            RBV[d, j] = RBV[d, i]
+            j += 1
+    RBN[d] = j
+    n = j
+    if n < nmin:
+        return False
+    sw = 0.0
+    st = 0.0
+    sz = 0.0
+    for i in range(n):
+        w = 1.0 / RBV[d, i]
+        sw += w
+        st += w * (RBT[d, i] - t)
+        sz += w * RBZ[d, i]
+    tm = st / sw
+    zm = sz / sw
+    stt = 0.0
+    stz = 0.0
+    for i in range(n):
+        w = 1.0 / RBV[d, i]
+        dt = RBT[d, i] - t - tm
+        stt += w * dt * dt
+        stz += w * dt * (RBZ[d, i] - zm)
+    slope = stz / stt if stt > 0 else 0.0
+    for i in range(n):
+        pred = zm + slope * (RBT[d, i] - t - tm)
+        if abs(RBZ[d, i] - pred) > 3.0 * math.sqrt(RBV[d, i]) + 0.01:
+            return False
+    out[0] = zm + slope * (0.0 - tm)
+    out[1] = slope
+    out[2] = 1.0 / sw
+    return True
+
+
+@njit(cache=True)
+def kalman_run(ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
+               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
+               W, X, P, NH, T, RBT, RBZ, RBV, RBN, LAST_RAW, LAST_NEW_T,
+               o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
+               o_nh, o_tt):
+    """Run the Gaussian-sum Kalman estimator over time-ordered events, in place.
+
+    Outputs per event: decision code and flags, innovation and NIS of the chosen
+    hypothesis, chosen branch (0 far/only, 1 near, -1 none) and its probability, the
+    predictive log-likelihood, and the direction's moment-matched state after the event
+    (range, rate, P00, P01, P11), the weight of the heaviest component, the number of
+    components and the state time.
+    """
+    n = ev_t.shape[0]
+    q = par[P_Q]
+    gate = par[P_GATE]
+    K = int(par[P_K])
+    prune = par[P_PRUNE]
+    near_prior = par[P_NEAR_PRIOR]
+    amb = par[P_AMB]
+    outl = par[P_OUTLIER]
+    reacq_n = int(par[P_REACQ_N])
+    reacq_w = par[P_REACQ_W]
+    max_lag = par[P_MAX_LAG]
+    init_rate = par[P_INIT_RATE]
+    merge_d2 = par[P_MERGE]
+    CW = np.empty(3 * MAXC)
+    CX = np.empty((3 * MAXC, 2))
+    CP = np.empty((3 * MAXC, 2, 2))
+    CB = np.empty(3 * MAXC, np.int64)     # candidate index, -1 = outlier hypothesis
+    CNIS = np.empty(3 * MAXC)
+    CY = np.empty(3 * MAXC)
+    used = np.empty(3 * MAXC, np.bool_)
+    grp = np.empty(3 * MAXC, np.int64)
+    mom = np.empty(5)
+    ra = np.empty(3)
+    for i in range(n):
+        d = ev_dir[i]
+        s = ev_sensor[i]
+        t = ev_t[i]
+        code = ev_code[i]
+        flags = ev_flags[i]
+        innov = math.nan
+        nis = math.nan
+        branch = -1
+        bprob = math.nan
+        ll = math.nan
+        infl = 1.0
+        if code == ACCEPTED:
+            if NH[d] > 0 and t < T[d] - max_lag:
+                code = LATE
+            elif sens_kind[s] == KIND_IR and sens_hold[s] > 0.0:
+                raw = ev_raw[i]
+                since = t - LAST_NEW_T[s]
+                if raw == LAST_RAW[s] and since < 1.5 * sens_hold[s]:
+                    code = HELD
+                else:
+                    if since < sens_hold[s]:
+                        infl = sens_hold[s] / max(since, 1e-6)
+                        flags |= FLAG_R_INFLATED
+                    LAST_RAW[s] = raw
+                    LAST_NEW_T[s] = t
+        suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
+        if code == ACCEPTED:
+            z = ev_z[i]
+            sg = ev_s[i]
+            if NH[d] == 0:
+                if suspect:
+                    code = CROSSTALK
+                else:
+                    nc = _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH)
+                    T[d] = t
+                    if nc == 2:
+                        code = AMBIGUOUS
+                        branch = 0 if near_prior < 0.5 else 1
+                        bprob = max(near_prior, 1.0 - near_prior)
+                    else:
+                        branch = 0 if math.isnan(z[1]) else 1
+                        bprob = 1.0
+            else:
+                tt = t if t > T[d] else T[d]
+                dt = tt - T[d]
+                nh = NH[d]
+                if dt > 0:
+                    for k in range(nh):
+                        _predict(X[d, k], P[d, k], dt, q)
+                T[d] = tt
+                nchild = 0
+                best_nis = math.inf
+                best_y = math.nan
+                for k in range(nh):
+                    for c in range(2):
+                        if math.isnan(z[c]):
+                            continue
+                        r = sg[c] * sg[c] * infl
+                        S = P[d, k, 0, 0] + r
+                        y = z[c] - X[d, k, 0]
+                        e = y * y / S
+                        if e < best_nis:
+                            best_nis = e
+                            best_y = y
+                        if e <= gate:
+                            _joseph(X[d, k], P[d, k], z[c], r, CX[nchild], CP[nchild])
+                            CW[nchild] = W[d, k] * math.exp(-0.5 * (e + LOG_2PI + math.log(S)))
+                            CB[nchild] = c
+                            CNIS[nchild] = e
+                            CY[nchild] = y
+                            nchild += 1
+                if nchild == 0:
+                    innov = best_y
+                    nis = best_nis
+                    code = CROSSTALK if suspect else GATED
+                    if not suspect:
+                        m = RBN[d]
+                        if m == RB:
+                            for j in range(RB - 1):
+                                RBT[d, j] = RBT[d, j + 1]
+                                RBZ[d, j] = RBZ[d, j + 1]
+                                RBV[d, j] = RBV[d, j + 1]
+                            m = RB - 1
+                        c0 = 0 if not math.isnan(z[0]) else 1
+                        RBT[d, m] = t
+                        RBZ[d, m] = z[c0]
+                        RBV[d, m] = sg[c0] * sg[c0]
+                        RBN[d] = m + 1
+                        if _reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra):
+                            NH[d] = 1
+                            W[d, 0] = 1.0
+                            X[d, 0, 0] = ra[0]
+                            X[d, 0, 1] = ra[1]
+                            P[d, 0, 0, 0] = ra[2] + sg[c0] * sg[c0]
+                            P[d, 0, 0, 1] = 0.0
+                            P[d, 0, 1, 0] = 0.0
+                            P[d, 0, 1, 1] = init_rate * init_rate
+                            RBN[d] = 0
+                            code = REACQUIRED
+                            branch = c0
+                            bprob = 1.0
+                else:
+                    tot = 0.0
+                    for j in range(nchild):
+                        tot += CW[j]
+                    # "this reading is an outlier" hypotheses keep each prior component alive
+                    for k in range(nh):
+                        CX[nchild, 0] = X[d, k, 0]
+                        CX[nchild, 1] = X[d, k, 1]
+                        for a in range(2):
+                            for b in range(2):
+                                CP[nchild, a, b] = P[d, k, a, b]
+                        CW[nchild] = W[d, k] * outl
+                        CB[nchild] = -1
+                        tot += CW[nchild]
+                        nchild += 1
+                    ll = math.log(tot) if tot > 0 else -745.0
+                    pb0 = 0.0
+                    pb1 = 0.0
+                    pmiss = 0.0
+                    for j in range(nchild):
+                        CW[j] /= tot
+                        if CB[j] == 0:
+                            pb0 += CW[j]
+                        elif CB[j] == 1:
+                            pb1 += CW[j]
+                        else:
+                            pmiss += CW[j]
+                    # keep the K heaviest, merging near-duplicates into them
+                    for j in range(nchild):
+                        used[j] = False
+                        grp[j] = -1
+                    nk = 0
+                    for slot in range(K):
+                        bj = -1
+                        bw = -1.0
+                        for j in range(nchild):
+                            if not used[j] and CW[j] > bw:
+                                bw = CW[j]
+                                bj = j
+                        if bj < 0 or bw < prune:
+                            break
+                        used[bj] = True
+                        wsum = CW[bj]
+                        m0 = CW[bj] * CX[bj, 0]
+                        m1 = CW[bj] * CX[bj, 1]
+                        for j in range(nchild):
+                            if used[j]:
+                                continue
+                            dd = CX[j, 0] - CX[bj, 0]
+                            if dd * dd <= merge_d2 * (CP[j, 0, 0] + CP[bj, 0, 0]):
+                                used[j] = True
+                                grp[j] = bj
+                                wsum += CW[j]
+                                m0 += CW[j] * CX[j, 0]
+                                m1 += CW[j] * CX[j, 1]
+                        m0 /= wsum
+                        m1 /= wsum
+                        p00 = 0.0
+                        p01 = 0.0
+                        p11 = 0.0
+                        for j in range(nchild):
+                            if j == bj or grp[j] == bj:
+                                d0 = CX[j, 0] - m0
+                                d1 = CX[j, 1] - m1
+                                p00 += CW[j] * (CP[j, 0, 0] + d0 * d0)
+                                p01 += CW[j] * (CP[j, 0, 1] + d0 * d1)
+                                p11 += CW[j] * (CP[j, 1, 1] + d1 * d1)
+                        W[d, nk] = wsum
+                        X[d, nk, 0] = m0
+                        X[d, nk, 1] = m1
+                        P[d, nk, 0, 0] = p00 / wsum
+                        P[d, nk, 0, 1] = p01 / wsum
+                        P[d, nk, 1, 0] = p01 / wsum
+                        P[d, nk, 1, 1] = p11 / wsum
+                        nk += 1
+                    ws = 0.0
+                    for k in range(nk):
+                        ws += W[d, k]
+                    for k in range(nk):
+                        W[d, k] /= ws
+                    NH[d] = nk
+                    # the reading's decision
+                    if pmiss > pb0 and pmiss > pb1:
+                        code = CROSSTALK if suspect else GATED
+                        innov = best_y
+                        nis = best_nis
+                    else:
+                        branch = 0 if pb0 >= pb1 else 1
+                        bprob = (pb0 if branch == 0 else pb1) / (pb0 + pb1)
+                        code = ACCEPTED if bprob >= amb else AMBIGUOUS
+                        # innovation of the heaviest updated child on the chosen branch
+                        bestw = -1.0
+                        for j in range(nchild - nh):
+                            if CB[j] == branch and CW[j] > bestw:
+                                bestw = CW[j]
+                                innov = CY[j]
+                                nis = CNIS[j]
+        elif code == DROPOUT and sens_kind[s] == KIND_ECHO and NH[d] > 1:
+            # "Nothing heard": likely when the target is inside the blanking zone.
+            nh = NH[d]
+            ws = 0.0
+            for k in range(nh):
+                sd = math.sqrt(P[d, k, 0, 0])
+                pin = 0.5 * math.erfc(-(sens_blank[s] - X[d, k, 0]) / (sd * math.sqrt(2.0)))
+                W[d, k] *= pin * sens_p_blank_drop[s] + (1.0 - pin) * sens_p_drop[s]
+                ws += W[d, k]
+            if ws > 0:
+                for k in range(nh):
+                    W[d, k] /= ws
+            else:
+                for k in range(nh):
+                    W[d, k] = 1.0 / nh
+        o_code[i] = code
+        o_flags[i] = flags
+        o_innov[i] = innov
+        o_nis[i] = nis
+        o_branch[i] = branch
+        o_bprob[i] = bprob
+        o_loglik[i] = ll
+        nh = NH[d]
+        if nh > 0:
+            _moments(W[d], X[d], P[d], nh, mom)
+            pm = 0.0
+            for k in range(nh):
+                if W[d, k] > pm:
+                    pm = W[d, k]
+            for j in range(5):
+                o_track[i, j] = mom[j]
+            o_pmaj[i] = pm
+        else:
+            for j in range(5):
+                o_track[i, j] = math.nan
+            o_pmaj[i] = math.nan
+        o_nh[i] = nh
+        o_tt[i] = T[d]

@@ -1,0 +1,387 @@
+"""The fuser: readings in, one decision per reading and a track per direction out.
+
+`Fuser` keeps the estimator state between calls. `Fuser.process` runs whole arrays of
+readings (a replay chunk); `Fuser.push` runs one reading through the same code, so the
+robot and the replay can never disagree.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import decisions as D
+from .errors import InputError
+from .estimators import _kernels as K
+from .measurements import Measurements
+from .rig import Rig
+from .screening import air_at, classify_crosstalk
+from .sensors.air import speed_of_sound
+from scipy.stats import chi2
+
+__all__ = ["Fuser", "Estimate", "Decision", "StepBatch"]
+
+_PING_MEMORY_S = 1.0
+_CROSSTALK_TOL_S = 2.5e-4  # about 4 cm of two-way path
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """The fused state of one direction after a reading.
+
+    ``range_m`` and ``sigma_m`` are the moments of the whole Gaussian sum, so while two
+    near-zone hypotheses are alive the sigma covers both; ``p_major`` is the weight of
+    the heaviest hypothesis and ``range_major_m`` is not reported separately here (see
+    the track file).
+    """
+
+    t_s: float
+    direction: str
+    range_m: float
+    sigma_m: float
+    rate_mps: float
+    rate_sigma_mps: float
+    p_major: float
+    n_hypotheses: int
+
+
+@dataclass(frozen=True)
+class Decision:
+    """What happened to one reading."""
+
+    sensor: str
+    t_s: float
+    code: int
+    innovation_m: float
+    nis: float
+    branch: int
+    branch_prob: float
+    flags: int
+
+    @property
+    def reason(self) -> str:
+        return D.name_of(self.code)
+
+    @property
+    def accepted(self) -> bool:
+        return self.code < D.FIRST_REJECT
+
+
+@dataclass
+class StepBatch:
+    """Per-reading results of `Fuser.process`, in processing (time) order.
+
+    Every array has one entry per input reading. ``row`` is the reading's index in its
+    sensor's input arrays, so ``(sensor, row)`` identifies it.
+    """
+
+    sensor: np.ndarray      # int, index into Fuser.sensor_names
+    row: np.ndarray         # int, index within that sensor's input
+    t_s: np.ndarray         # reading timestamp
+    t_meas_s: np.ndarray    # timestamp minus latency
+    direction: np.ndarray   # int, index into Fuser.directions
+    code: np.ndarray
+    flags: np.ndarray
+    innovation_m: np.ndarray
+    nis: np.ndarray
+    branch: np.ndarray
+    branch_prob: np.ndarray
+    loglik: np.ndarray
+    z_m: np.ndarray         # (n, 2) candidates (far/only, near)
+    sigma_m: np.ndarray     # (n, 2)
+    raw_m: np.ndarray
+    temp_c: np.ndarray
+    state: np.ndarray       # (n, 5): range, rate, P00, P01, P11 after the reading
+    p_major: np.ndarray
+    n_hyp: np.ndarray
+    t_state_s: np.ndarray
+
+    def __len__(self):
+        return len(self.code)
+
+
+def _params(est, tau=None) -> np.ndarray:
+    p = np.zeros(K.N_PARAMS)
+    p[K.P_Q] = est.accel_psd
+    p[K.P_GATE] = np.inf if est.gate_probability >= 1.0 else chi2.ppf(est.gate_probability, 1)
+    p[K.P_K] = est.max_hypotheses
+    p[K.P_PRUNE] = est.prune_weight
+    p[K.P_NEAR_PRIOR] = est.near_prior
+    p[K.P_AMB] = est.ambiguous_below
+    p[K.P_OUTLIER] = est.outlier_density
+    p[K.P_REACQ_N] = est.reacquire_count
+    p[K.P_REACQ_W] = est.reacquire_window_s
+    p[K.P_MAX_LAG] = est.max_lag_s
+    p[K.P_INIT_RATE] = est.init_rate_sigma_mps
+    p[K.P_MERGE] = 0.25
+    return p
+
+
+class Fuser:
+    """Fuse a rig's rangers, one direction per track.
+
+    Parameters
+    ----------
+    rig : fusion.Rig
+
+    Examples
+    --------
+    >>> from fusion import Fuser, Rig                       # doctest: +SKIP
+    >>> fuser = Fuser(Rig.load("datasets/cold-store-dock.rig.toml"))  # doctest: +SKIP
+    >>> est, dec = fuser.push("echo_front", 0.0, 0.00291)   # doctest: +SKIP
+    >>> dec.reason, round(est.range_m, 3)                   # doctest: +SKIP
+    ('accepted', 0.5)
+    """
+
+    def __init__(self, rig: Rig):
+        if rig.estimator.kind != "kalman":
+            raise InputError("Fuser runs the Kalman estimator; use "
+                             "fusion.estimators.particle.ParticleFuser for kind='particle'",
+                             field="estimator.kind")
+        self.rig = rig
+        self.sensor_names = tuple(rig.sensors)
+        self.directions = tuple(rig.directions)
+        self._index = {n: i for i, n in enumerate(self.sensor_names)}
+        sens = [rig.sensors[n] for n in self.sensor_names]
+        self._dir_of = np.array([self.directions.index(s.direction) for s in sens], np.int64)
+        self._kind = np.array([K.KIND_ECHO if s.kind == "echo" else K.KIND_IR for s in sens],
+                              np.int64)
+        self._hold = np.array([getattr(s, "hold_s", 0.0) for s in sens])
+        self._blank = np.array([getattr(s, "min_range_m", 0.0) + s.offset_m for s in sens])
+        self._p_blank_drop = np.array([getattr(s, "p_blank_dropout", 0.9) for s in sens])
+        self._p_drop = np.array([getattr(s, "p_dropout", 0.05) for s in sens])
+        c_fast, c_slow = speed_of_sound(60.0), speed_of_sound(-40.0)
+        self._tau_min = np.array([2 * getattr(s, "min_range_m", 0.0) / c_fast for s in sens])
+        self._tau_max = np.array([2 * getattr(s, "max_range_m", 0.0) / c_slow for s in sens])
+        self._par = _params(rig.estimator)
+        self.state = K.new_state(len(self.directions), len(sens), rig.estimator.max_hypotheses)
+        self._air_t = np.zeros(0)
+        self._air_v = np.zeros(0)
+        self._rh_t = np.zeros(0)
+        self._rh_v = np.zeros(0)
+        self._pings = [(np.zeros(0), np.zeros(0)) if k == K.KIND_ECHO else (None, None)
+                       for k in self._kind]
+
+    # --- environment -------------------------------------------------------------
+    def push_air(self, t_s, temp_c) -> None:
+        """Add air-temperature samples (degC); NaN marks a failed sample."""
+        t_s, temp_c = np.atleast_1d(np.asarray(t_s, float)), np.atleast_1d(np.asarray(temp_c, float))
+        self._air_t, self._air_v = _append_sorted(self._air_t, self._air_v, t_s, temp_c)
+
+    def push_humidity(self, t_s, relative_humidity) -> None:
+        """Add relative-humidity samples (fraction 0..1)."""
+        t_s = np.atleast_1d(np.asarray(t_s, float))
+        rh = np.atleast_1d(np.asarray(relative_humidity, float))
+        self._rh_t, self._rh_v = _append_sorted(self._rh_t, self._rh_v, t_s, rh)
+
+    def _humidity_at(self, t):
+        air = self.rig.air
+        if not air.humidity_stream or self._rh_t.size == 0:
+            return np.full(t.shape, air.relative_humidity)
+        good = np.isfinite(self._rh_v) & (self._rh_v >= 0) & (self._rh_v <= 1)
+        rt, rv = self._rh_t[good], self._rh_v[good]
+        if rt.size == 0:
+            return np.full(t.shape, air.relative_humidity)
+        j = np.searchsorted(rt, t, side="right") - 1
+        return np.where(j >= 0, rv[np.maximum(j, 0)], air.relative_humidity)
+
+    def _power_up_temp(self):
+        good = np.isfinite(self._air_v) & (self._air_v > -60) & (self._air_v < 90)
+        return float(self._air_v[good][0]) if good.any() else self.rig.air.fallback_temp_c
+
+    # --- readings ----------------------------------------------------------------
+    def decode(self, name: str, t_s, raw, ping_t_s=None) -> tuple[Measurements, np.ndarray]:
+        """Decode one sensor's readings; returns measurements and the temperature used."""
+        s = self.rig.sensors[name]
+        t_s = np.asarray(t_s, dtype=float)
+        temp, tsig, fb = air_at(t_s, self._air_t, self._air_v, self.rig.air)
+        if s.kind == "echo":
+            rh = self._humidity_at(t_s)
+            pu = getattr(s, "power_up_temp_c", math.nan)
+            pu = self._power_up_temp() if not np.isfinite(pu) else pu
+            m = s.decode(raw, t_s, temp, tsig, rh, power_up_temp_c=pu)
+            m.flags[fb] |= D.FLAG_TEMP_FALLBACK
+        else:
+            m = s.decode(raw, t_s)
+        return m, temp
+
+    def process(self, readings: dict, environment: dict | None = None) -> StepBatch:
+        """Run arrays of readings through the estimator.
+
+        Parameters
+        ----------
+        readings : dict
+            Sensor name -> ``(t_s, raw)`` or ``(t_s, raw, ping_t_s)``.
+        environment : dict, optional
+            ``{"air": (t_s, temp_c), "humidity": (t_s, rh)}``; samples are added before
+            the readings are decoded (each reading uses the last sample before it).
+        """
+        if environment:
+            if "air" in environment:
+                self.push_air(*environment["air"])
+            if "humidity" in environment:
+                self.push_humidity(*environment["humidity"])
+        parts = []
+        for name, value in readings.items():
+            if name not in self._index:
+                raise InputError(f"unknown sensor {name!r}; the rig has "
+                                 f"{', '.join(self.sensor_names)}", field="sensor")
+            t_s, raw = value[0], value[1]
+            ping = value[2] if len(value) > 2 else None
+            t_s = np.atleast_1d(np.asarray(t_s, dtype=float))
+            raw = np.atleast_1d(np.asarray(raw)) if self.rig.sensors[name].output == "serial" \
+                else np.atleast_1d(np.asarray(raw, dtype=float))
+            if raw.shape != t_s.shape:
+                raise InputError(f"t_s has {t_s.size} values but raw has {raw.size}",
+                                 field=f"{name}.raw")
+            if len(t_s) == 0:
+                continue
+            m, temp = self.decode(name, t_s, raw, ping)
+            parts.append((self._index[name], t_s, raw, ping, m, temp))
+        return self._run(parts)
+
+    def _run(self, parts) -> StepBatch:
+        if not parts:
+            return _empty_batch()
+        sensor = np.concatenate([np.full(len(p[1]), p[0], np.int64) for p in parts])
+        row = np.concatenate([np.arange(len(p[1])) for p in parts])
+        t_s = np.concatenate([p[1] for p in parts])
+        t_meas = np.concatenate([p[4].t_s for p in parts])
+        z = np.concatenate([p[4].z_m for p in parts])
+        sg = np.concatenate([p[4].sigma_m for p in parts])
+        code = np.concatenate([p[4].code for p in parts]).astype(np.int8)
+        flags = np.concatenate([p[4].flags for p in parts]).astype(np.int16)
+        raw_m = np.concatenate([p[4].raw_m for p in parts])
+        temp = np.concatenate([p[5] for p in parts])
+        rawv = np.concatenate([p[2].astype(float) if p[2].dtype.kind in "fiu"
+                               else np.full(len(p[2]), np.nan) for p in parts])
+        tof = np.concatenate([p[4].tof_s for p in parts])
+        ping = np.concatenate([np.asarray(p[3], float) if p[3] is not None
+                               else np.full(len(p[1]), np.nan) for p in parts])
+        self._screen_crosstalk(sensor, ping, tof, code, flags)
+        bad_t = ~np.isfinite(t_meas)
+        code[bad_t] = D.INVALID
+        key = np.where(bad_t, -np.inf, t_meas)  # invalid times: decided first, harmlessly
+        order = np.lexsort((sensor, key))
+        n = len(order)
+        out = {k: np.empty(n, dt) for k, dt in (("code", np.int8), ("flags", np.int16),
+                                                 ("innov", float), ("nis", float),
+                                                 ("branch", np.int8), ("bprob", float),
+                                                 ("ll", float), ("pmaj", float),
+                                                 ("nh", np.int8), ("tt", float))}
+        track = np.empty((n, 5))
+        st = self.state
+        direction = self._dir_of[sensor[order]]
+        K.kalman_run(np.where(bad_t, 0.0, t_meas)[order], direction, sensor[order],
+                     np.ascontiguousarray(z[order]), np.ascontiguousarray(sg[order]),
+                     code[order], flags[order], rawv[order],
+                     self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
+                     self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
+                     st["RBZ"], st["RBV"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
+                     out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
+                     out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
+        return StepBatch(sensor=sensor[order], row=row[order], t_s=t_s[order],
+                         t_meas_s=t_meas[order], direction=direction, code=out["code"],
+                         flags=out["flags"], innovation_m=out["innov"], nis=out["nis"],
+                         branch=out["branch"], branch_prob=out["bprob"], loglik=out["ll"],
+                         z_m=z[order], sigma_m=sg[order], raw_m=raw_m[order], temp_c=temp[order],
+                         state=track, p_major=out["pmaj"], n_hyp=out["nh"], t_state_s=out["tt"])
+
+    def _screen_crosstalk(self, sensor, ping, tof, code, flags):
+        is_echo = self._kind[sensor] == K.KIND_ECHO
+        has_ping = is_echo & np.isfinite(ping)
+        if not has_ping.any():
+            return
+        # add this batch's pings to the memory, then classify against all of them
+        new = []
+        for j, (p, tf) in enumerate(self._pings):
+            if p is None:
+                new.append((None, None))
+                continue
+            sel = has_ping & (sensor == j)
+            pj = np.concatenate([p, ping[sel]])
+            tj = np.concatenate([tf, tof[sel]])
+            o = np.argsort(pj, kind="stable")
+            new.append((pj[o], tj[o]))
+        rx = np.where(has_ping, ping + tof, np.nan)
+        suspect, definite = classify_crosstalk(rx, sensor, new, self._tau_min, self._tau_max,
+                                               _CROSSTALK_TOL_S)
+        flags[suspect & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
+        code[definite & (code == D.ACCEPTED)] = D.CROSSTALK
+        horizon = np.nanmax(ping[has_ping]) - _PING_MEMORY_S
+        self._pings = [(None, None) if p is None else (p[p >= horizon], tf[p >= horizon])
+                       for p, tf in new]
+
+    # --- one reading ------------------------------------------------------------
+    def push(self, sensor: str, t_s: float, raw, ping_t_s: float = math.nan):
+        """Fuse one reading; returns ``(Estimate, Decision)``.
+
+        A reading for a sensor the rig does not describe gets the decision
+        ``unknown_sensor`` (the estimate is that of the first direction, unchanged).
+        """
+        if sensor not in self._index:
+            d = 0
+            est = self.estimate(self.directions[d])
+            return est, Decision(sensor, float(t_s), D.UNKNOWN_SENSOR, math.nan, math.nan,
+                                 -1, math.nan, 0)
+        s = self.rig.sensors[sensor]
+        try:
+            t = float(t_s)
+        except (TypeError, ValueError):
+            t = math.nan
+        if s.output == "serial":
+            rawa = np.array([raw if isinstance(raw, str) else ""], dtype=object).astype(str)
+        else:
+            try:
+                rawa = np.array([float(raw)])
+            except (TypeError, ValueError):
+                rawa = np.array([math.nan])
+        try:
+            p = float(ping_t_s)
+        except (TypeError, ValueError):
+            p = math.nan
+        b = self.process({sensor: (np.array([t]), rawa, np.array([p]))})
+        return self._estimate_from(b, 0), Decision(sensor, t, int(b.code[0]),
+                                                   float(b.innovation_m[0]), float(b.nis[0]),
+                                                   int(b.branch[0]), float(b.branch_prob[0]),
+                                                   int(b.flags[0]))
+
+    def _estimate_from(self, b: StepBatch, i: int) -> Estimate:
+        x = b.state[i]
+        return Estimate(float(b.t_state_s[i]), self.directions[int(b.direction[i])], float(x[0]),
+                        float(math.sqrt(x[2])) if x[2] >= 0 else math.nan, float(x[1]),
+                        float(math.sqrt(x[4])) if x[4] >= 0 else math.nan, float(b.p_major[i]),
+                        int(b.n_hyp[i]))
+
+    def estimate(self, direction: str) -> Estimate:
+        """The current estimate of one direction (NaN before its first reading)."""
+        d = self.directions.index(direction)
+        st = self.state
+        nh = int(st["NH"][d])
+        if nh == 0:
+            return Estimate(math.nan, direction, math.nan, math.nan, math.nan, math.nan,
+                            math.nan, 0)
+        mom = np.empty(5)
+        K._moments(st["W"][d], st["X"][d], st["P"][d], nh, mom)
+        return Estimate(float(st["T"][d]), direction, float(mom[0]), float(math.sqrt(mom[2])),
+                        float(mom[1]), float(math.sqrt(mom[4])), float(st["W"][d, :nh].max()), nh)
+
+
+def _append_sorted(t0, v0, t1, v1):
+    t = np.concatenate([t0, t1])
+    v = np.concatenate([v0, v1])
+    if t.size > 1 and np.any(np.diff(t) < 0):
+        o = np.argsort(t, kind="stable")
+        t, v = t[o], v[o]
+    return t, v
+
+
+def _empty_batch() -> StepBatch:
+    e = np.zeros(0)
+    return StepBatch(sensor=np.zeros(0, np.int64), row=np.zeros(0, np.int64), t_s=e, t_meas_s=e,
+                     direction=np.zeros(0, np.int64), code=np.zeros(0, np.int8),
+                     flags=np.zeros(0, np.int16), innovation_m=e, nis=e,
+                     branch=np.zeros(0, np.int8), branch_prob=e, loglik=e, z_m=np.zeros((0, 2)),
+                     sigma_m=np.zeros((0, 2)), raw_m=e, temp_c=e, state=np.zeros((0, 5)),
+                     p_major=e, n_hyp=np.zeros(0, np.int8), t_state_s=e)

@@ -1,0 +1,177 @@
+"""The IR triangulation ranger as a sensor: raw output to range candidates.
+
+The voltage curve lives in `fusion.sensors.triangulation`; this module adds what a unit
+on a robot needs besides: its ADC, its noise, its sample-and-hold cycle and its mount.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .. import decisions as D
+from ..errors import ConfigError
+from ..measurements import Measurements
+from .adc import adc_quantisation_sigma_v, counts_to_volts
+from .triangulation import TriangulationCurve
+
+__all__ = ["TriangulationRanger"]
+
+_KEYS = {"name", "kind", "direction", "output", "adc_bits", "adc_vref", "volts_sigma",
+         "hold_s", "offset_m", "latency_s", "near_min_m", "curve"}
+
+
+@dataclass(frozen=True)
+class TriangulationRanger:
+    """One IR triangulation ranger.
+
+    Parameters
+    ----------
+    name, direction : str
+        Sensor name and the rig direction it faces.
+    curve : TriangulationCurve
+        Voltage versus range of this unit.
+    output : {"counts", "volts"}
+        What the log holds: ADC counts (decoded with `adc_bits`, `adc_vref`) or volts.
+    volts_sigma : float
+        Output noise of the unit, volts (one sigma, before the ADC).
+    hold_s : float
+        The unit's internal measurement cycle: it holds its output in between, so a host
+        sampling faster sees one measurement several times (0 = unknown/none).
+    offset_m : float
+        Mount offset along the measuring axis: range from the direction's reference point
+        equals the sensor's range plus `offset_m`.
+    latency_s : float
+        Time from the measurement to the reading's timestamp.
+    near_min_m : float
+        Smallest near-side range that is physically possible (housing, window).
+    """
+
+    name: str
+    direction: str
+    curve: TriangulationCurve
+    output: str = "counts"
+    adc_bits: int = 10
+    adc_vref: float = 5.0
+    volts_sigma: float = 0.01
+    hold_s: float = 0.0
+    offset_m: float = 0.0
+    latency_s: float = 0.0
+    near_min_m: float = 0.01
+    kind: str = field(default="triangulation", init=False)
+
+    # --- description -------------------------------------------------------------
+    @classmethod
+    def from_dict(cls, d: dict, where: str = "") -> "TriangulationRanger":
+        name = d.get("name", "?")
+        unknown = set(d) - _KEYS
+        if unknown:
+            raise ConfigError(f"unknown key {sorted(unknown)[0]!r}; expected one of "
+                              f"{', '.join(sorted(_KEYS))}", file=where,
+                              field=f"sensor.{name}")
+        if "curve" not in d:
+            raise ConfigError("an IR triangulation ranger needs a [sensor.curve] table",
+                              file=where, field=f"sensor.{name}.curve")
+        curve = TriangulationCurve.from_dict(d["curve"], where=where)
+        kw = {}
+        for key, typ in (("output", str), ("adc_bits", int), ("adc_vref", float),
+                         ("volts_sigma", float), ("hold_s", float), ("offset_m", float),
+                         ("latency_s", float), ("near_min_m", float)):
+            if key in d:
+                kw[key] = _typed(d[key], typ, where, f"sensor.{name}.{key}")
+        obj = cls(name=_typed(d.get("name"), str, where, "sensor.name"),
+                  direction=_typed(d.get("direction"), str, where, f"sensor.{name}.direction"),
+                  curve=curve, **kw)
+        obj._validate(where)
+        return obj
+
+    def _validate(self, where):
+        f = f"sensor.{self.name}"
+        if self.output not in ("counts", "volts"):
+            raise ConfigError(f"output must be 'counts' or 'volts', got {self.output!r}",
+                              file=where, field=f + ".output")
+        if not 1 <= self.adc_bits <= 24:
+            raise ConfigError("adc_bits must be 1..24", file=where, field=f + ".adc_bits")
+        for key in ("adc_vref", "volts_sigma"):
+            v = getattr(self, key)
+            if not (np.isfinite(v) and v > 0):
+                raise ConfigError(f"{key} must be a positive number, got {v}", file=where,
+                                  field=f"{f}.{key}")
+        for key in ("hold_s", "latency_s", "near_min_m"):
+            v = getattr(self, key)
+            if not (np.isfinite(v) and v >= 0):
+                raise ConfigError(f"{key} must be >= 0, got {v}", file=where, field=f"{f}.{key}")
+
+    def to_dict(self) -> dict:
+        return {"name": self.name, "kind": self.kind, "direction": self.direction,
+                "output": self.output, "adc_bits": self.adc_bits, "adc_vref": self.adc_vref,
+                "volts_sigma": self.volts_sigma, "hold_s": self.hold_s,
+                "offset_m": self.offset_m, "latency_s": self.latency_s,
+                "near_min_m": self.near_min_m, "curve": self.curve.to_dict()}
+
+    # --- model ---------------------------------------------------------------------
+    def to_volts(self, raw) -> np.ndarray:
+        raw = np.asarray(raw, dtype=float)
+        if self.output == "counts":
+            return counts_to_volts(raw, self.adc_bits, self.adc_vref)
+        return raw
+
+    @property
+    def total_volts_sigma(self) -> float:
+        """Output noise plus ADC quantisation (LSB/sqrt(12)), volts."""
+        q = adc_quantisation_sigma_v(self.adc_bits, self.adc_vref) if self.output == "counts" else 0.0
+        return float(np.hypot(self.volts_sigma, q))
+
+    def decode(self, raw, t_s, temp_c=None, temp_sigma_c=None, relative_humidity=0.0,
+               power_up_temp_c=None) -> Measurements:
+        """Raw readings to near/far range candidates with sigma from the curve's slope.
+
+        The far-side candidate goes in column 0, the near-side one in column 1. A reading
+        below the voltage at the far end of the valid span is "no target" (out of range);
+        one above the peak by more than three sigma is out of range; one within three sigma
+        above the peak is placed at the peak.
+        """
+        raw = np.asarray(raw, dtype=float)
+        t_s = np.asarray(t_s, dtype=float)
+        n = raw.shape[0]
+        m = Measurements.empty(n)
+        volts = self.to_volts(raw)
+        bad = ~np.isfinite(raw) | ~np.isfinite(t_s) | (raw < 0)
+        if self.output == "counts":
+            bad |= raw > (2 ** self.adc_bits - 1)
+        m.code[bad] = D.INVALID
+        sv = self.total_volts_sigma
+        c = self.curve
+        vpk = c.peak_volts
+        v = np.where(bad, np.nan, volts)
+        above = v > vpk + 3 * sv
+        v_clip = np.minimum(v, vpk)
+        near, far = c.ranges(v_clip)
+        no_target = v < c.volts(c.max_range_m) - 3 * sv
+        far = np.where(far > c.max_range_m, np.nan, far)
+        near = np.where(near < self.near_min_m, np.nan, near)
+        at_peak = v >= vpk
+        far = np.where(at_peak, c.peak_range_m, far)
+        near = np.where(at_peak, np.nan, near)
+        out = (~bad) & (above | no_target | (np.isnan(far) & np.isnan(near)))
+        m.code[out] = D.OUT_OF_RANGE
+        ok = m.code == D.ACCEPTED
+        for col, r in ((0, far), (1, near)):
+            r = np.where(ok, r, np.nan)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                s = sv / np.abs(c.slope(np.where(np.isnan(r), c.peak_range_m, r)))
+            # At the peak the slope vanishes: the reading says only "about the peak".
+            s = np.minimum(s, max(c.max_range_m, 1.0))
+            m.z_m[:, col] = r + self.offset_m
+            m.sigma_m[:, col] = np.where(np.isnan(r), np.nan, s)
+        m.raw_m[:] = np.where(ok, far, np.nan)
+        m.t_s[:] = t_s - self.latency_s
+        return m
+
+
+def _typed(value, typ, where, fieldname):
+    if typ is float and isinstance(value, int) and not isinstance(value, bool):
+        value = float(value)
+    if not isinstance(value, typ) or isinstance(value, bool) and typ is not bool:
+        raise ConfigError(f"expected {typ.__name__}, got {value!r}", file=where, field=fieldname)
+    return value
