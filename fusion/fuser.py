@@ -70,12 +70,15 @@ class Decision:
 
 @dataclass
 class StepBatch:
-    """Per-reading results of `Fuser.process`, in processing (time) order.
+    """Per-reading results of `Fuser.process`.
 
-    Every array has one entry per input reading. ``row`` is the reading's index in its
-    sensor's input arrays, so ``(sensor, row)`` identifies it.
+    Every array has one entry per input reading, sensor by sensor in the order the
+    readings were given; ``order`` is the permutation the estimator processed them in
+    (time order), so ``x[order]`` is a time-ordered view. ``row`` is the reading's index
+    in its sensor's input arrays, so ``(sensor, row)`` identifies it.
     """
 
+    order: np.ndarray       # processing (time) order
     sensor: np.ndarray      # int, index into Fuser.sensor_names
     row: np.ndarray         # int, index within that sensor's input
     t_s: np.ndarray         # reading timestamp
@@ -99,6 +102,13 @@ class StepBatch:
 
     def __len__(self):
         return len(self.code)
+
+    def in_time_order(self) -> "StepBatch":
+        """A copy with every array in processing (time) order."""
+        o = self.order
+        kw = {f: np.take(getattr(self, f), o, axis=0) for f in self.__dataclass_fields__
+              if f != "order"}
+        return StepBatch(order=np.arange(len(o)), **kw)
 
 
 def _params(est, tau=None) -> np.ndarray:
@@ -217,6 +227,14 @@ class Fuser:
             ``{"air": (t_s, temp_c), "humidity": (t_s, rh)}``; samples are added before
             the readings are decoded (each reading uses the last sample before it).
         """
+        return self.run_prepared(self.prepare(readings, environment))
+
+    def prepare(self, readings: dict, environment: dict | None = None) -> dict | None:
+        """Decode and screen readings without running the estimator.
+
+        Returns the concatenated event arrays that `run_prepared` consumes; the tuner
+        uses this to decode a log once and run the estimator many times.
+        """
         if environment:
             if "air" in environment:
                 self.push_air(*environment["air"])
@@ -239,11 +257,8 @@ class Fuser:
                 continue
             m, temp = self.decode(name, t_s, raw, ping)
             parts.append((self._index[name], t_s, raw, ping, m, temp))
-        return self._run(parts)
-
-    def _run(self, parts) -> StepBatch:
         if not parts:
-            return _empty_batch()
+            return None
         sensor = np.concatenate([np.full(len(p[1]), p[0], np.int64) for p in parts])
         row = np.concatenate([np.arange(len(p[1])) for p in parts])
         t_s = np.concatenate([p[1] for p in parts])
@@ -262,6 +277,15 @@ class Fuser:
         self._screen_crosstalk(sensor, ping, tof, code, flags)
         bad_t = ~np.isfinite(t_meas)
         code[bad_t] = D.INVALID
+        return dict(sensor=sensor, row=row, t_s=t_s, t_meas=t_meas, z=z, sg=sg, code=code,
+                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv)
+
+    def run_prepared(self, prep: dict | None) -> StepBatch:
+        """Run the estimator over events from `prepare` (arrays are not modified)."""
+        if prep is None:
+            return _empty_batch()
+        sensor, t_meas = prep["sensor"], prep["t_meas"]
+        bad_t = ~np.isfinite(t_meas)
         key = np.where(bad_t, -np.inf, t_meas)  # invalid times: decided first, harmlessly
         order = np.lexsort((sensor, key))
         n = len(order)
@@ -272,21 +296,26 @@ class Fuser:
                                                  ("nh", np.int8), ("tt", float))}
         track = np.empty((n, 5))
         st = self.state
-        direction = self._dir_of[sensor[order]]
-        K.kalman_run(np.where(bad_t, 0.0, t_meas)[order], direction, sensor[order],
-                     np.ascontiguousarray(z[order]), np.ascontiguousarray(sg[order]),
-                     code[order], flags[order], rawv[order],
+        direction = np.take(self._dir_of, sensor)
+        self._kernel(order, np.where(bad_t, 0.0, t_meas), direction, sensor, prep["z"],
+                     prep["sg"], prep["code"], prep["flags"], prep["rawv"], out, track)
+        return StepBatch(order=order, sensor=sensor, row=prep["row"], t_s=prep["t_s"],
+                         t_meas_s=t_meas, direction=direction, code=out["code"],
+                         flags=out["flags"], innovation_m=out["innov"], nis=out["nis"],
+                         branch=out["branch"], branch_prob=out["bprob"], loglik=out["ll"],
+                         z_m=prep["z"], sigma_m=prep["sg"], raw_m=prep["raw_m"],
+                         temp_c=prep["temp"], state=track, p_major=out["pmaj"],
+                         n_hyp=out["nh"], t_state_s=out["tt"])
+
+    def _kernel(self, order, t, direction, sensor, z, sg, code, flags, rawv, out, track):
+        """Run the estimator kernel over the events (subclasses swap the estimator)."""
+        st = self.state
+        K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv,
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
                      self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
-        return StepBatch(sensor=sensor[order], row=row[order], t_s=t_s[order],
-                         t_meas_s=t_meas[order], direction=direction, code=out["code"],
-                         flags=out["flags"], innovation_m=out["innov"], nis=out["nis"],
-                         branch=out["branch"], branch_prob=out["bprob"], loglik=out["ll"],
-                         z_m=z[order], sigma_m=sg[order], raw_m=raw_m[order], temp_c=temp[order],
-                         state=track, p_major=out["pmaj"], n_hyp=out["nh"], t_state_s=out["tt"])
 
     def _screen_crosstalk(self, sensor, ping, tof, code, flags):
         is_echo = self._kind[sensor] == K.KIND_ECHO
@@ -379,7 +408,7 @@ def _append_sorted(t0, v0, t1, v1):
 
 def _empty_batch() -> StepBatch:
     e = np.zeros(0)
-    return StepBatch(sensor=np.zeros(0, np.int64), row=np.zeros(0, np.int64), t_s=e, t_meas_s=e,
+    return StepBatch(order=np.zeros(0, np.int64), sensor=np.zeros(0, np.int64), row=np.zeros(0, np.int64), t_s=e, t_meas_s=e,
                      direction=np.zeros(0, np.int64), code=np.zeros(0, np.int8),
                      flags=np.zeros(0, np.int16), innovation_m=e, nis=e,
                      branch=np.zeros(0, np.int8), branch_prob=e, loglik=e, z_m=np.zeros((0, 2)),

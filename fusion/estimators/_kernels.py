@@ -178,12 +178,15 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, out):
 
 
 @njit(cache=True)
-def kalman_run(ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
+def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
                W, X, P, NH, T, RBT, RBZ, RBV, RBN, LAST_RAW, LAST_NEW_T,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                o_nh, o_tt):
-    """Run the Gaussian-sum Kalman estimator over time-ordered events, in place.
+    """Run the Gaussian-sum Kalman estimator over events in the order `order`, in place.
+
+    Events are read at ``order[i]`` and outputs written at the same index, so the
+    caller's arrays stay in their own order and nothing is copied to sort them.
 
     Outputs per event: decision code and flags, innovation and NIS of the chosen
     hypothesis, chosen branch (0 far/only, 1 near, -1 none) and its probability, the
@@ -191,7 +194,7 @@ def kalman_run(ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
     (range, rate, P00, P01, P11), the weight of the heaviest component, the number of
     components and the state time.
     """
-    n = ev_t.shape[0]
+    n = order.shape[0]
     q = par[P_Q]
     gate = par[P_GATE]
     K = int(par[P_K])
@@ -214,7 +217,8 @@ def kalman_run(ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
     grp = np.empty(3 * MAXC, np.int64)
     mom = np.empty(5)
     ra = np.empty(3)
-    for i in range(n):
+    for ii in range(n):
+        i = order[ii]
         d = ev_dir[i]
         s = ev_sensor[i]
         t = ev_t[i]
@@ -289,6 +293,8 @@ def kalman_run(ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                 if nchild == 0:
                     innov = best_y
                     nis = best_nis
+                    # predictive density of a reading outside every gate: the outlier term
+                    ll = math.log(outl)
                     code = CROSSTALK if suspect else GATED
                     if not suspect:
                         m = RBN[d]

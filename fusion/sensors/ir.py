@@ -6,6 +6,7 @@ on a robot needs besides: its ADC, its noise, its sample-and-hold cycle and its 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -129,24 +130,52 @@ class TriangulationRanger:
         The far-side candidate goes in column 0, the near-side one in column 1. A reading
         below the voltage at the far end of the valid span is "no target" (out of range);
         one above the peak by more than three sigma is out of range; one within three sigma
-        above the peak is placed at the peak.
+        above the peak is placed at the peak. ADC counts take few distinct values, so they
+        are decoded through a table computed once per unit.
         """
         raw = np.asarray(raw, dtype=float)
         t_s = np.asarray(t_s, dtype=float)
+        if self.output == "counts":
+            top = 2 ** self.adc_bits - 1
+            ok = np.isfinite(raw) & (raw >= 0) & (raw <= top) & (raw == np.floor(raw))
+            idx = np.where(ok, raw, top + 1).astype(np.int64)
+            z, sg, code = self._count_table
+            m = Measurements(t_s=t_s - self.latency_s, z_m=np.take(z, idx, axis=0),
+                             sigma_m=np.take(sg, idx, axis=0), code=np.take(code, idx),
+                             flags=np.zeros(raw.shape[0], np.int16),
+                             tof_s=np.full(raw.shape[0], np.nan),
+                             raw_m=np.take(z[:, 0], idx) - self.offset_m)
+        else:
+            z, sg, code = self._candidates(raw)
+            m = Measurements(t_s=t_s - self.latency_s, z_m=z, sigma_m=sg, code=code,
+                             flags=np.zeros(raw.shape[0], np.int16),
+                             tof_s=np.full(raw.shape[0], np.nan), raw_m=z[:, 0] - self.offset_m)
+        m.code[~np.isfinite(t_s)] = D.INVALID
+        return m
+
+    @cached_property
+    def _count_table(self):
+        # one row per ADC code, plus a last row for anything that is not a valid code
+        top = 2 ** self.adc_bits - 1
+        z, sg, code = self._candidates(np.append(np.arange(top + 1, dtype=float), np.nan))
+        return z, sg, code
+
+    def _candidates(self, raw):
         n = raw.shape[0]
-        m = Measurements.empty(n)
+        z = np.full((n, 2), np.nan)
+        sgm = np.full((n, 2), np.nan)
+        code = np.zeros(n, np.int8)
         volts = self.to_volts(raw)
-        bad = ~np.isfinite(raw) | ~np.isfinite(t_s) | (raw < 0)
+        bad = ~np.isfinite(raw) | (raw < 0)
         if self.output == "counts":
             bad |= raw > (2 ** self.adc_bits - 1)
-        m.code[bad] = D.INVALID
+        code[bad] = D.INVALID
         sv = self.total_volts_sigma
         c = self.curve
         vpk = c.peak_volts
         v = np.where(bad, np.nan, volts)
         above = v > vpk + 3 * sv
-        v_clip = np.minimum(v, vpk)
-        near, far = c.ranges(v_clip)
+        near, far = c.ranges(np.minimum(v, vpk))
         no_target = v < c.volts(c.max_range_m) - 3 * sv
         far = np.where(far > c.max_range_m, np.nan, far)
         near = np.where(near < self.near_min_m, np.nan, near)
@@ -154,19 +183,17 @@ class TriangulationRanger:
         far = np.where(at_peak, c.peak_range_m, far)
         near = np.where(at_peak, np.nan, near)
         out = (~bad) & (above | no_target | (np.isnan(far) & np.isnan(near)))
-        m.code[out] = D.OUT_OF_RANGE
-        ok = m.code == D.ACCEPTED
+        code[out] = D.OUT_OF_RANGE
+        ok = code == D.ACCEPTED
         for col, r in ((0, far), (1, near)):
             r = np.where(ok, r, np.nan)
             with np.errstate(divide="ignore", invalid="ignore"):
                 s = sv / np.abs(c.slope(np.where(np.isnan(r), c.peak_range_m, r)))
             # At the peak the slope vanishes: the reading says only "about the peak".
             s = np.minimum(s, max(c.max_range_m, 1.0))
-            m.z_m[:, col] = r + self.offset_m
-            m.sigma_m[:, col] = np.where(np.isnan(r), np.nan, s)
-        m.raw_m[:] = np.where(ok, far, np.nan)
-        m.t_s[:] = t_s - self.latency_s
-        return m
+            z[:, col] = r + self.offset_m
+            sgm[:, col] = np.where(np.isnan(r), np.nan, s)
+        return z, sgm, code
 
 
 def _typed(value, typ, where, fieldname):

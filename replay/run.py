@@ -1,0 +1,591 @@
+"""Batch replay: stream a log through the fusion core and write a track file.
+
+The log is read window by window (`replay.logfile.LogFile.iter_windows`), each window
+goes through `fusion.Fuser.process`, and the results are appended to an HDF5 track file
+and folded into running diagnostics, so memory stays flat in the log's length.
+"""
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+
+import h5py
+import numpy as np
+
+from fusion import decisions as D
+from fusion.errors import InputError, LogFormatError, RangefuseError
+from fusion.fuser import Fuser
+from fusion.rig import Rig
+from fusion.estimators.smoother import rts_smooth
+
+from . import metrics as M
+from ._io import atomic_output, refuse_overwrite
+from .logfile import open_log
+
+__all__ = ["run", "ReplayResult", "TRACK_FORMAT", "TRACK_FORMAT_VERSION", "make_fuser",
+           "load_rig", "register"]
+
+TRACK_FORMAT = "rangefuse-track"
+TRACK_FORMAT_VERSION = 1
+_FILTERS = dict(compression="gzip", compression_opts=4, shuffle=True, fletcher32=True)
+_CHUNK = 65536
+
+# track flags
+TRACK_MULTIMODAL = 1
+TRACK_REACQUIRED = 2
+TRACK_TEMP_FALLBACK = 4
+
+_DECISION_COLS = [  # name, dtype, units
+    ("sensor", np.int16, ""), ("row", np.int64, ""), ("t_s", np.float64, "s"),
+    ("direction", np.int8, ""), ("decision", np.int8, ""), ("flags", np.int16, ""),
+    ("innovation_m", np.float64, "m"), ("nis", np.float64, "1"), ("branch", np.int8, ""),
+    ("branch_prob", np.float64, "1"), ("loglik", np.float64, "1"),
+    ("z_far_m", np.float64, "m"), ("z_near_m", np.float64, "m"),
+    ("sigma_far_m", np.float64, "m"), ("sigma_near_m", np.float64, "m"),
+    ("temp_c", np.float64, "degC")]
+_TRACK_COLS = [("t_s", np.float64, "s"), ("range_m", np.float64, "m"),
+               ("sigma_m", np.float64, "m"), ("rate_mps", np.float64, "m/s"),
+               ("rate_sigma_mps", np.float64, "m/s"), ("cov_rr_m2", np.float64, "m2"),
+               ("cov_rv_m2ps", np.float64, "m2/s"), ("cov_vv_m2ps2", np.float64, "m2/s2"),
+               ("p_major", np.float64, "1"), ("n_hypotheses", np.int8, ""),
+               ("flags", np.int8, "")]
+
+
+def load_rig(rig) -> Rig | None:
+    if rig is None or isinstance(rig, Rig):
+        return rig
+    return Rig.load(rig)
+
+
+def make_fuser(rig: Rig):
+    """The estimator the rig asks for, behind the common ``process`` interface."""
+    if rig.estimator.kind == "particle":
+        from fusion.estimators.particle import ParticleFuser
+        return ParticleFuser(rig)
+    return Fuser(rig)
+
+
+class _Appender:
+    """Resizable, chunked, checksummed datasets that grow chunk by chunk."""
+
+    def __init__(self, group, cols):
+        self.ds = {}
+        for name, dt, units in cols:
+            ds = group.create_dataset(name, shape=(0,), maxshape=(None,), dtype=dt,
+                                      chunks=(_CHUNK,), **_FILTERS)
+            if units:
+                ds.attrs["units"] = units
+            self.ds[name] = ds
+        self.n = 0
+
+    def append(self, **cols):
+        m = len(next(iter(cols.values())))
+        if m == 0:
+            return
+        for name, ds in self.ds.items():
+            ds.resize((self.n + m,))
+            ds[self.n:self.n + m] = cols[name]
+        self.n += m
+
+
+@dataclass
+class _SensorStats:
+    counts: np.ndarray = field(default_factory=lambda: np.zeros(len(D.NAMES), np.int64))
+    nis_sum: float = 0.0
+    nis_n: int = 0
+    flag_counts: dict = field(default_factory=dict)
+    raw_err: M.ErrorStats = field(default_factory=M.ErrorStats)
+
+
+@dataclass
+class _DirStats:
+    err: M.ErrorStats = field(default_factory=M.ErrorStats)
+    err_smooth: M.ErrorStats = field(default_factory=M.ErrorStats)
+    white: M.Whiteness = field(default_factory=M.Whiteness)
+    nis_sum: float = 0.0
+    nis_n: int = 0
+    loglik: float = 0.0
+    amb_readings: int = 0      # IR readings with two candidates that were fused
+    amb_unresolved: int = 0    # ...whose branch stayed ambiguous
+    branch_n: int = 0          # ...below the peak by truth, with a valid echo nearby
+    branch_ok: int = 0
+    reacquired: int = 0
+
+
+@dataclass
+class ReplayResult:
+    """What a replay did, with the path of the track file it wrote.
+
+    Use `summary` for the text report and `plot` for the figure; the full per-reading
+    record is in the track file (``decisions`` group) at `path`.
+    """
+
+    path: str
+    log_paths: list
+    rig: Rig
+    sensor_names: tuple
+    directions: tuple
+    n_readings: int
+    sensors: dict
+    dirs: dict
+    has_truth: bool
+    smoothed: bool
+    seconds: float
+    span_s: tuple
+
+    # --- figures -------------------------------------------------------------------
+    def plot(self, path=None, **kw):
+        """Fused versus raw tracks (see `replay.plots.plot_track`)."""
+        from .plots import plot_track
+        return plot_track(self.path, out=path, **kw)
+
+    # --- numbers -------------------------------------------------------------------
+    def rejections(self) -> dict:
+        out = {}
+        for name, st in self.sensors.items():
+            for code in range(D.FIRST_REJECT, len(D.NAMES)):
+                if st.counts[code]:
+                    out.setdefault(D.NAMES[code], {})[name] = int(st.counts[code])
+        return out
+
+    def errors(self, direction=None, smoothed=False) -> dict:
+        d = direction or self.directions[0]
+        st = self.dirs[d]
+        return (st.err_smooth if smoothed else st.err).table()
+
+    def nis(self, direction=None):
+        st = self.dirs[direction or self.directions[0]]
+        mean = st.nis_sum / st.nis_n if st.nis_n else math.nan
+        return mean, st.nis_n, M.nis_bounds(st.nis_n)
+
+    def summary(self) -> str:
+        L = []
+        span = self.span_s
+        L.append(f"replay of {', '.join(os.path.basename(p) for p in self.log_paths)}: "
+                 f"{self.n_readings} readings over {span[1] - span[0]:.1f} s in "
+                 f"{self.seconds:.2f} s ({self.n_readings / max(self.seconds, 1e-9):,.0f} "
+                 f"readings/s); estimator {self.rig.estimator.kind}")
+        L.append(f"track file: {self.path}")
+        L.append("")
+        L.append("decisions by sensor:")
+        names = [n for n in D.NAMES]
+        used = [c for c in range(len(names))
+                if any(st.counts[c] for st in self.sensors.values())]
+        L.append("  " + f"{'sensor':<16}" + "".join(f"{names[c]:>13}" for c in used)
+                 + f"{'mean NIS':>10}")
+        for name, st in self.sensors.items():
+            mn = st.nis_sum / st.nis_n if st.nis_n else math.nan
+            L.append("  " + f"{name:<16}" + "".join(f"{int(st.counts[c]):>13}" for c in used)
+                     + f"{mn:>10.2f}")
+        for d in self.directions:
+            st = self.dirs[d]
+            L.append("")
+            L.append(f"direction {d}:")
+            mean, n, (lo, hi) = self.nis(d)
+            L.append(f"  time-averaged NIS {mean:.3f} over {n} fused readings; 95% bounds "
+                     f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
+            w = st.white.result()
+            if w["rho"]:
+                L.append(f"  innovation whiteness: lag-1..{len(w['rho'])} autocorrelation max "
+                         f"|rho| = {max(abs(r) for r in w['rho']):.3f} (95% bound "
+                         f"{w['bound']:.3f}); Ljung-Box Q = {w['q']:.1f}, p = {w['p']:.3g}")
+            L.append(f"  innovations log-likelihood {st.loglik:.1f}")
+            if st.amb_readings:
+                L.append(f"  near-zone ambiguity: {st.amb_readings} IR readings had two "
+                         f"candidates; {st.amb_unresolved} stayed ambiguous "
+                         f"({100 * st.amb_unresolved / st.amb_readings:.1f} %)")
+            if st.branch_n:
+                L.append(f"  branch correct for {st.branch_ok} of {st.branch_n} IR readings "
+                         f"below the peak ({100 * st.branch_ok / st.branch_n:.2f} %)")
+            if st.reacquired:
+                L.append(f"  track re-acquired {st.reacquired} times")
+            if self.has_truth:
+                for label, tab in (("filtered", st.err.table()),) + (
+                        (("smoothed", st.err_smooth.table()),) if self.smoothed else ()):
+                    L.append(f"  against truth ({label}):")
+                    L.append(f"    {'zone':<8}{'n':>9}{'RMSE mm':>10}{'bias mm':>10}"
+                             f"{'worst mm':>10}{'NEES':>8}{'2σ cover':>10}")
+                    for z, row in tab.items():
+                        if row is None:
+                            continue
+                        L.append(f"    {z:<8}{row['n']:>9}{1e3 * row['rmse_m']:>10.1f}"
+                                 f"{1e3 * row['bias_m']:>10.1f}{1e3 * row['worst_m']:>10.1f}"
+                                 f"{row['nees']:>8.2f}{100 * row['cover2']:>9.1f}%")
+        rej = self.rejections()
+        if rej:
+            L.append("")
+            L.append("rejections by reason: " + "; ".join(
+                f"{r} {sum(v.values())} ({', '.join(f'{k} {c}' for k, c in v.items())})"
+                for r, v in rej.items()))
+        fb = sum(st.flag_counts.get("temp_fallback", 0) for st in self.sensors.values())
+        if fb:
+            L.append(f"air temperature fallback (stale or missing stream) for {fb} readings")
+        L.append("")
+        L.append("Fused ranges are not a safety-rated protective function.")
+        return "\n".join(L)
+
+
+def _truth_interp(truth, t):
+    if truth is None:
+        return None
+    tt, rr = truth
+    ok = np.isfinite(tt) & np.isfinite(rr)
+    tt, rr = tt[ok], rr[ok]
+    if tt.size < 2:
+        return np.full(np.shape(t), np.nan)
+    out = np.interp(t, tt, rr, left=np.nan, right=np.nan)
+    return out
+
+
+def run(log, rig=None, *, out=None, smooth=False, window_s=10.0, progress=False,
+        inputs_extra=()) -> ReplayResult:
+    """Replay one log (or several, one after another on separate tracks) through the core.
+
+    Parameters
+    ----------
+    log : path or list of paths
+        Log file(s) in the rangefuse HDF5 format.
+    rig : Rig or path, optional
+        Rig to use instead of the one embedded in the log.
+    out : path, optional
+        Track file to write (HDF5). Default: a file in a temporary folder.
+    smooth : bool
+        Also write Rauch-Tung-Striebel smoothed ranges.
+    window_s : float
+        Seconds of log read per step (memory is proportional to it, not to log length).
+    progress : bool
+        Print a progress bar on stderr.
+
+    Returns
+    -------
+    ReplayResult
+    """
+    paths = [os.fspath(log)] if isinstance(log, (str, os.PathLike)) else [os.fspath(p) for p in log]
+    if out is None:
+        import tempfile
+        out = os.path.join(tempfile.mkdtemp(prefix="rangefuse-"),
+                           os.path.splitext(os.path.basename(paths[0]))[0] + ".track.h5")
+    out = os.fspath(out)
+    refuse_overwrite(out, paths + list(inputs_extra))
+    rig_given = load_rig(rig)
+    t_start = time.perf_counter()
+    with atomic_output(out, inputs=paths) as tmp:
+        with h5py.File(tmp, "w", track_order=True) as f5:
+            result = _run_into(f5, paths, rig_given, smooth, window_s, progress)
+    result.path = out
+    result.seconds = time.perf_counter() - t_start
+    return result
+
+
+def _rig_for(log, rig_given, path) -> Rig:
+    if rig_given is not None:
+        rig = rig_given
+    else:
+        if not log.rig_toml or not log.rig_toml.strip():
+            raise LogFormatError("the log holds no rig description; pass --rig", file=path,
+                                 field="/rig")
+        rig = Rig.from_toml(log.rig_toml, where=f"{path}:/rig")
+    missing = [n for n in log.sensors if n not in rig.sensors]
+    if missing:
+        raise InputError(f"the log has sensor {missing[0]!r}, which the rig does not describe "
+                         f"(rig sensors: {', '.join(rig.sensors)})", file=path,
+                         field=f"/sensors/{missing[0]}")
+    for n, info in log.sensors.items():
+        s = rig.sensors[n]
+        if info.kind != s.kind or info.output != s.output:
+            raise InputError(f"sensor {n!r} is {info.kind}/{info.output} in the log but "
+                             f"{s.kind}/{s.output} in the rig", file=path,
+                             field=f"/sensors/{n}")
+    return rig
+
+
+def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
+    rig0 = None
+    sensors_stats = {}
+    dir_stats = {}
+    n_total = 0
+    span = (math.inf, -math.inf)
+    any_truth = False
+    for li, path in enumerate(paths):
+        with open_log(path) as log:
+            rig = _rig_for(log, rig_given, path)
+            if rig0 is None:
+                rig0 = rig
+                f5.attrs["format"] = TRACK_FORMAT
+                f5.attrs["format_version"] = TRACK_FORMAT_VERSION
+                f5.attrs["estimator"] = rig.estimator.kind
+                f5.attrs["sensor_names"] = json.dumps(list(rig.sensors))
+                f5.attrs["direction_names"] = json.dumps(list(rig.directions))
+                f5.attrs["decision_names"] = json.dumps(list(D.NAMES))
+                f5.attrs["flag_names"] = json.dumps({str(k): v for k, v in D.FLAG_NAMES.items()})
+                f5.attrs["track_flag_names"] = json.dumps({"1": "multimodal", "2": "reacquired",
+                                                           "4": "temp_fallback"})
+                f5.attrs["safety"] = ("Fused ranges are not a safety-rated protective function.")
+                f5.create_dataset("rig", data=rig.to_toml(), dtype=h5py.string_dtype())
+            elif rig.sensor_names != rig0.sensor_names or rig.directions != rig0.directions:
+                raise InputError("logs replayed together must share one rig layout (same "
+                                 "sensors and directions)", file=path, field="/rig")
+            grp = f5.create_group(f"runs/{li}") if len(paths) > 1 else f5
+            grp.attrs["log"] = os.path.abspath(path)
+            res = _replay_one(log, rig, grp, smooth, window_s, progress, path)
+            n_total += res["n"]
+            any_truth |= res["has_truth"]
+            if res["span"][0] <= res["span"][1]:
+                span = (min(span[0], res["span"][0]), max(span[1], res["span"][1]))
+            for k, v in res["sensors"].items():
+                if k in sensors_stats:
+                    a = sensors_stats[k]
+                    a.counts += v.counts
+                    a.nis_sum += v.nis_sum
+                    a.nis_n += v.nis_n
+                    for fk, fv in v.flag_counts.items():
+                        a.flag_counts[fk] = a.flag_counts.get(fk, 0) + fv
+                    a.raw_err.merge(v.raw_err)
+                else:
+                    sensors_stats[k] = v
+            for k, v in res["dirs"].items():
+                if k in dir_stats:
+                    a = dir_stats[k]
+                    a.err.merge(v.err)
+                    a.err_smooth.merge(v.err_smooth)
+                    for attr in ("nis_sum", "nis_n", "loglik", "amb_readings", "amb_unresolved",
+                                 "branch_n", "branch_ok", "reacquired"):
+                        setattr(a, attr, getattr(a, attr) + getattr(v, attr))
+                    a.white.add([])  # whiteness is reported for the first log's sequence
+                else:
+                    dir_stats[k] = v
+    if not math.isfinite(span[0]):
+        span = (0.0, 0.0)
+    return ReplayResult(path="", log_paths=paths, rig=rig0, sensor_names=rig0.sensor_names,
+                        directions=rig0.directions, n_readings=n_total, sensors=sensors_stats,
+                        dirs=dir_stats, has_truth=any_truth, smoothed=smooth, seconds=0.0,
+                        span_s=span)
+
+
+class _Progress:
+    def __init__(self, total, label, enabled):
+        self.total, self.label, self.enabled = max(total, 1), label, enabled
+        self.done = 0
+        self.last = 0.0
+
+    def add(self, n):
+        self.done += n
+        if not self.enabled:
+            return
+        now = time.monotonic()
+        if now - self.last < 0.2 and self.done < self.total:
+            return
+        self.last = now
+        frac = min(self.done / self.total, 1.0)
+        bar = "#" * int(30 * frac)
+        sys.stderr.write(f"\r{self.label} [{bar:<30}] {100 * frac:5.1f}% {self.done}/{self.total}")
+        if self.done >= self.total:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+
+
+def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
+    fuser = make_fuser(rig)
+    names = fuser.sensor_names
+    dirs = fuser.directions
+    env = {}
+    if rig.air.stream:
+        if rig.air.stream in log.environments:
+            env["air"] = log.environment(rig.air.stream)
+    if rig.air.humidity_stream and rig.air.humidity_stream in log.environments:
+        env["humidity"] = log.environment(rig.air.humidity_stream)
+    # The environment is small next to the readings: hand it over once, causally used.
+    if "air" in env:
+        fuser.push_air(*env["air"])
+    if "humidity" in env:
+        fuser.push_humidity(*env["humidity"])
+    truths = {d: log.truth(d) for d in dirs}
+    has_truth = any(v is not None for v in truths.values())
+    edges = {d: M.zone_edges(rig, d) for d in dirs}
+    dec = _Appender(grp.create_group("decisions"), _DECISION_COLS)
+    tracks = {d: _Appender(grp.create_group(f"track/{d}"), _TRACK_COLS) for d in dirs}
+    sstats = {n: _SensorStats() for n in names}
+    dstats = {d: _DirStats() for d in dirs}
+    offsets = {n: 0 for n in log.sensors}
+    total = sum(info.n for info in log.sensors.values())
+    bar = _Progress(total, os.path.basename(path), progress and total > 200_000)
+    span = (math.inf, -math.inf)
+    for window in log.iter_windows(window_s):
+        readings = {}
+        starts = {}
+        for name, stream in window.items():
+            readings[name] = (stream.t_s, stream.raw, stream.ping_t_s)
+            starts[name] = offsets[name]
+            offsets[name] += len(stream)
+        b = fuser.process(readings)
+        if len(b) == 0:
+            continue
+        b = b.in_time_order()
+        sidx = b.sensor
+        rows = b.row + np.array([starts.get(names[i], 0) for i in range(len(names))])[sidx]
+        dec.append(sensor=sidx, row=rows, t_s=b.t_s, direction=b.direction, decision=b.code,
+                   flags=b.flags, innovation_m=b.innovation_m, nis=b.nis, branch=b.branch,
+                   branch_prob=b.branch_prob, loglik=b.loglik, z_far_m=b.z_m[:, 0],
+                   z_near_m=b.z_m[:, 1], sigma_far_m=b.sigma_m[:, 0],
+                   sigma_near_m=b.sigma_m[:, 1], temp_c=b.temp_c)
+        fin = np.isfinite(b.t_s)
+        if fin.any():
+            span = (min(span[0], float(b.t_s[fin].min())), max(span[1], float(b.t_s[fin].max())))
+        _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks)
+        bar.add(len(b))
+    if smooth:
+        for di, d in enumerate(dirs):
+            _smooth_track(grp[f"track/{d}"], rig.estimator.accel_psd, truths[d], edges[d],
+                          dstats[d])
+    for d in dirs:
+        if truths[d] is not None:
+            g = grp.create_group(f"truth/{d}")
+            for k, v in zip(("t_s", "range_m"), truths[d]):
+                g.create_dataset(k, data=v, **_FILTERS).attrs["units"] = "s" if k == "t_s" else "m"
+    return {"n": dec.n, "sensors": sstats, "dirs": dstats, "has_truth": has_truth, "span": span}
+
+
+def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
+    code = b.code
+    acc = code < D.FIRST_REJECT
+    for si, name in enumerate(names):
+        m = b.sensor == si
+        if not m.any():
+            continue
+        st = sstats[name]
+        st.counts += np.bincount(code[m], minlength=len(D.NAMES)).astype(np.int64)
+        am = m & acc & np.isfinite(b.nis)
+        st.nis_sum += float(b.nis[am].sum())
+        st.nis_n += int(am.sum())
+        for bit, fname in D.FLAG_NAMES.items():
+            c = int(((b.flags[m] & bit) != 0).sum())
+            if c:
+                st.flag_counts[fname] = st.flag_counts.get(fname, 0) + c
+    for di, d in enumerate(dirs):
+        m = b.direction == di
+        if not m.any():
+            continue
+        ds = dstats[d]
+        am = m & acc
+        fin = am & np.isfinite(b.nis)
+        ds.nis_sum += float(b.nis[fin].sum())
+        ds.nis_n += int(fin.sum())
+        ds.loglik += float(np.nansum(b.loglik[am]))
+        ds.white.add(np.sign(b.innovation_m[fin]) * np.sqrt(b.nis[fin]))
+        two = am & np.isfinite(b.z_m[:, 1]) & np.isfinite(b.z_m[:, 0])
+        ds.amb_readings += int(two.sum())
+        ds.amb_unresolved += int((two & (code == D.AMBIGUOUS)).sum())
+        ds.reacquired += int((m & (code == D.REACQUIRED)).sum())
+        # track rows: one per fused reading of this direction
+        x = b.state[am]
+        tflags = np.where(b.p_major[am] < rig.estimator.ambiguous_below, TRACK_MULTIMODAL, 0)
+        tflags = tflags | np.where(code[am] == D.REACQUIRED, TRACK_REACQUIRED, 0)
+        tflags = tflags | np.where((b.flags[am] & D.FLAG_TEMP_FALLBACK) != 0,
+                                   TRACK_TEMP_FALLBACK, 0)
+        tracks[d].append(t_s=b.t_state_s[am], range_m=x[:, 0], sigma_m=np.sqrt(x[:, 2]),
+                         rate_mps=x[:, 1], rate_sigma_mps=np.sqrt(x[:, 4]), cov_rr_m2=x[:, 2],
+                         cov_rv_m2ps=x[:, 3], cov_vv_m2ps2=x[:, 4], p_major=b.p_major[am],
+                         n_hypotheses=b.n_hyp[am], flags=tflags.astype(np.int8))
+        if truths[d] is not None:
+            tr = _truth_interp(truths[d], b.t_state_s[am])
+            ds.err.add(x[:, 0] - tr, np.sqrt(x[:, 2]), M.zone_of(tr, edges[d]))
+            trm = _truth_interp(truths[d], b.t_meas_s[m])
+            # branch correctness: IR readings below the peak (by truth) that were fused
+            ir = np.array([rig.sensors[n].kind == "triangulation" for n in names])[b.sensor[m]]
+            below = ir & (trm < edges[d][0]) & acc[m] & (b.branch[m] >= 0)
+            ds.branch_n += int(below.sum())
+            ds.branch_ok += int((below & (b.branch[m] == 1)).sum())
+            for si, name in enumerate(names):
+                ms = b.sensor[m] == si
+                if ms.any():
+                    zz = b.z_m[m][ms]
+                    col = np.where(b.branch[m][ms] == 1, 1, 0)
+                    zsel = zz[np.arange(len(zz)), col]
+                    ok = acc[m][ms]
+                    sstats[name].raw_err.add(np.where(ok, zsel - trm[ms], np.nan),
+                                             b.sigma_m[m][ms][np.arange(len(zz)), col],
+                                             M.zone_of(trm[ms], edges[d]))
+
+
+def _smooth_track(g, q, truth, edges, ds, block=1_000_000):
+    n = g["t_s"].shape[0]
+    if n == 0:
+        return
+    cols = [("range_smoothed_m", "m"), ("sigma_smoothed_m", "m"), ("rate_smoothed_mps", "m/s")]
+    out = {}
+    for c, u in cols:
+        out[c] = g.create_dataset(c, shape=(n,), dtype=np.float64, chunks=(min(_CHUNK, n),),
+                                  **_FILTERS)
+        out[c].attrs["units"] = u
+    nxt = None
+    stop = n
+    while stop > 0:
+        start = max(0, stop - block)
+        t = g["t_s"][start:stop]
+        x = np.stack([g["range_m"][start:stop], g["rate_mps"][start:stop]], axis=1)
+        P = np.empty((stop - start, 2, 2))
+        P[:, 0, 0] = g["cov_rr_m2"][start:stop]
+        P[:, 0, 1] = P[:, 1, 0] = g["cov_rv_m2ps"][start:stop]
+        P[:, 1, 1] = g["cov_vv_m2ps2"][start:stop]
+        xs, Ps = rts_smooth(t, x, P, q, nxt)
+        out["range_smoothed_m"][start:stop] = xs[:, 0]
+        out["sigma_smoothed_m"][start:stop] = np.sqrt(Ps[:, 0, 0])
+        out["rate_smoothed_mps"][start:stop] = xs[:, 1]
+        if truth is not None:
+            tr = _truth_interp(truth, t)
+            ds.err_smooth.add(xs[:, 0] - tr, np.sqrt(Ps[:, 0, 0]), M.zone_of(tr, edges))
+        nxt = (t[0], xs[0], Ps[0])
+        stop = start
+
+
+# --- command line ------------------------------------------------------------------------
+def register(sub):
+    p = sub.add_parser(
+        "replay", help="replay logs through the fusion core and write track files",
+        description="Replay one or more logs through the fusion core; write a track file "
+                    "(HDF5: fused track per direction, one decision row per reading, the rig).",
+        epilog="example:\n  rangefuse replay datasets/cold-store-dock.h5 -o dock.track.h5 "
+               "--smooth --plot dock.png\n\nFused ranges are not a safety-rated protective "
+               "function.", formatter_class=__import__("argparse").RawDescriptionHelpFormatter)
+    p.add_argument("logs", nargs="+", metavar="LOG", help="log file(s) (HDF5)")
+    p.add_argument("--rig", help="rig TOML to use instead of the one embedded in each log")
+    p.add_argument("-o", "--out", required=True,
+                   help="track file (one log) or folder (several logs)")
+    p.add_argument("--smooth", action="store_true", help="add Rauch-Tung-Striebel smoothing")
+    p.add_argument("--plot", metavar="FIG.png", help="also draw fused versus raw tracks")
+    p.add_argument("--csv", action="store_true",
+                   help="also write OUT.track.csv and OUT.decisions.csv")
+    p.add_argument("--window", type=float, default=10.0, metavar="S",
+                   help="seconds of log read per step (default 10)")
+    p.add_argument("--quiet", action="store_true", help="print no summary")
+    p.set_defaults(func=_main)
+
+
+def _main(args) -> int:
+    outs = []
+    if len(args.logs) == 1:
+        outs = [args.out]
+    else:
+        if os.path.exists(args.out) and not os.path.isdir(args.out):
+            raise InputError("with several logs, -o names a folder", file=args.out, field="-o")
+        os.makedirs(args.out, exist_ok=True)
+        outs = [os.path.join(args.out, os.path.splitext(os.path.basename(p))[0] + ".track.h5")
+                for p in args.logs]
+    extra = [args.rig] if args.rig else []
+    for log, out in zip(args.logs, outs):
+        res = run(log, rig=args.rig, out=out, smooth=args.smooth, window_s=args.window,
+                  progress=sys.stderr.isatty(), inputs_extra=extra)
+        if not args.quiet:
+            print(res.summary())
+        if args.csv:
+            from .export import track_to_csv
+            track_to_csv(out)
+        if args.plot:
+            fig = args.plot if len(outs) == 1 else os.path.splitext(out)[0] + ".png"
+            res.plot(fig)
+            print(f"figure: {fig}")
+    return 0
