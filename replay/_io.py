@@ -7,7 +7,7 @@ import tempfile
 
 from fusion.errors import InputError
 
-__all__ = ["atomic_output", "same_file", "refuse_overwrite"]
+__all__ = ["atomic_output", "write_atomic", "same_file", "refuse_overwrite"]
 
 
 def same_file(a, b) -> bool:
@@ -38,13 +38,31 @@ def atomic_output(path, inputs=(), suffix=".tmp"):
         raise InputError(f"folder {folder!r} does not exist", file=path, field="-o")
     if not os.access(folder, os.W_OK):
         raise InputError(f"folder {folder!r} cannot be written", file=path, field="-o")
-    fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=suffix,
-                               dir=folder)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=suffix,
+                                   dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot write to folder {folder!r} ({exc.strerror})", file=path,
+                         field="-o") from None
     os.close(fd)
     try:
         yield tmp
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; outputs are ordinary files
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):
             os.remove(tmp)
         raise
+
+
+def write_atomic(path, data, inputs=()):
+    """Write ``data`` (bytes or str) to ``path`` atomically (see `atomic_output`)."""
+    if isinstance(data, str):
+        data = data.encode("utf-8")
+    with atomic_output(path, inputs=inputs) as tmp:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 from fusion import __version__
@@ -68,6 +69,12 @@ def main(argv=None) -> int:
             raise
         print(f"rangefuse {args.command}: error: {exc.one_line()}", file=sys.stderr)
         return 2
+    except BrokenPipeError:  # e.g. piped into head: the reader left, nothing is wrong
+        try:
+            sys.stdout = open(os.devnull, "w")
+        except OSError:
+            pass
+        return 0
     except KeyboardInterrupt:
         print(f"rangefuse {args.command}: interrupted; no partial output was kept", file=sys.stderr)
         return 130

@@ -1,0 +1,175 @@
+"""The ``rangefuse calibrate`` command end to end, its CSV reader, atomic writes and TOML."""
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+import pytest
+
+from fusion._toml import dumps, load, loads
+from fusion.errors import ConfigError, InputError
+from fusion.sensors.adc import volts_to_counts
+from fusion.sensors.triangulation import TriangulationCurve, fit_report
+from replay.calibrate import read_pairs, write_atomic
+from replay.cli import main
+
+TYPICAL = TriangulationCurve.typical_10_80()
+
+
+def _pairs(n=24, seed=7, sigma=0.01):
+    rng = np.random.default_rng(seed)
+    r = np.round(np.linspace(0.04, 0.80, n), 4)
+    v = np.round(TYPICAL.volts(r) + rng.normal(0.0, sigma, n), 4)
+    return r, v
+
+
+def _write_csv(path, header, rows):
+    path.write_text(",".join(header) + "\n" + "".join(",".join(map(str, row)) + "\n" for row in rows))
+    return path
+
+
+@pytest.fixture
+def pairs_csv(tmp_path):
+    r, v = _pairs()
+    return _write_csv(tmp_path / "pairs.csv", ["range_m", "volts", "note"],
+                      [(a, b, "bench") for a, b in zip(r, v)])
+
+
+def _one_error_line(capsys):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    return err[0]
+
+
+def test_calibrate_end_to_end_writes_a_curve_that_loads_back_equal(pairs_csv, tmp_path, capsys):
+    out, fig = tmp_path / "curve.toml", tmp_path / "fit.png"
+    assert main(["calibrate", str(pairs_csv), "-o", str(out), "--plot", str(fig)]) == 0
+    printed = capsys.readouterr().out
+    for word in ("chosen model", "saturating-inverse", "table", "AIC", "+/-", "peak",
+                 "residual_V", "measured_V"):
+        assert word in printed
+    doc = load(out)
+    curve = TriangulationCurve.from_dict(doc["curve"], where=str(out))
+    r, v = _pairs()
+    assert curve == fit_report(r, v).curve
+    assert doc["calibration"]["pairs"] == len(r)
+    # The fitted unit still reads the typical unit's check values (common practice, no source).
+    _, far = curve.ranges(1.5)
+    assert far == pytest.approx(0.40, abs=0.01)
+    assert fig.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["curve.toml", "fit.png", "pairs.csv"]
+
+
+def test_calibrate_decodes_adc_counts(tmp_path, capsys):
+    r, v = _pairs()
+    counts = volts_to_counts(v, 10, 5.0)
+    src = _write_csv(tmp_path / "counts.csv", ["range_m", "counts"], zip(r, counts))
+    out = tmp_path / "c.toml"
+    assert main(["calibrate", str(src), "-o", str(out), "--bits", "10", "--vref", "5"]) == 0
+    assert "ADC quantisation" in capsys.readouterr().out
+    curve = TriangulationCurve.from_dict(load(out)["curve"])
+    # 10 bits on 5 V is a 4.9 mV step, below the 10 mV noise: the far side hardly moves.
+    _, far = curve.ranges(TYPICAL.volts(0.5))
+    assert far == pytest.approx(0.5, abs=0.01)
+
+
+def test_calibrate_table_model_on_request(pairs_csv, tmp_path):
+    out = tmp_path / "t.toml"
+    assert main(["calibrate", str(pairs_csv), "-o", str(out), "--model", "table"]) == 0
+    curve = TriangulationCurve.from_dict(load(out)["curve"])
+    assert curve.model == "table" and len(curve.table_range_m) >= 4
+
+
+@pytest.mark.parametrize("header, rows, extra, needles", [
+    (["range_m", "volts"], [(0.1, 2.3), (0.2, "abc")], [], ["volts", "row 3", "abc"]),
+    (["range_m", "volts"], [(0.1, 2.3), (0.2,)], [], ["row 3", "cell"]),
+    (["distance", "volts"], [(0.1, 2.3)], [], ["range_m", "row 1"]),
+    (["range_m", "volts", "counts"], [(0.1, 2.3, 400)], [], ["both volts and counts"]),
+    (["range_m", "counts"], [(0.1, 400)], [], ["--bits and --vref"]),
+    (["range_m", "counts"], [(0.1, 400), (0.2, 1500)], ["--bits", "10", "--vref", "5"],
+     ["counts", "row 3", "0..1023"]),
+    (["range_m", "volts"], [(0.1, 2.3), (0.2, 2.5), (0.3, 2.0)], [], ["at least 6"]),
+    (["range_m", "volts"], [(0.05 * (i + 1), 2.0 + 0.01 * i) for i in range(8)], [],
+     ["near side"]),
+    (["range_m", "volts"], [(0.05 * (i + 1), 1.0) for i in range(7)] + [(-0.4, 1.0)], [],
+     ["negative", "row 9"]),
+])
+def test_bad_input_exits_2_with_one_line(tmp_path, capsys, header, rows, extra, needles):
+    src = _write_csv(tmp_path / "bad.csv", header, rows)
+    out = tmp_path / "out.toml"
+    assert main(["calibrate", str(src), "-o", str(out)] + extra) == 2
+    line = _one_error_line(capsys)
+    assert line.startswith("rangefuse calibrate: error: ")
+    assert str(src) in line
+    for needle in needles:
+        assert needle in line
+    assert not out.exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.csv"]
+
+
+def test_refuses_to_write_over_the_input(pairs_csv, capsys):
+    before = pairs_csv.read_bytes()
+    assert main(["calibrate", str(pairs_csv), "-o", str(pairs_csv)]) == 2
+    assert "input" in _one_error_line(capsys)
+    assert pairs_csv.read_bytes() == before
+
+
+def test_missing_file_and_bad_figure_name(tmp_path, pairs_csv, capsys):
+    assert main(["calibrate", str(tmp_path / "nope.csv"), "-o", str(tmp_path / "o.toml")]) == 2
+    assert "nope.csv" in _one_error_line(capsys)
+    assert main(["calibrate", str(pairs_csv), "-o", str(tmp_path / "o.toml"),
+                 "--plot", str(tmp_path / "fig.xyz")]) == 2
+    assert "fig.xyz" in _one_error_line(capsys)
+    assert not (tmp_path / "o.toml").exists()
+
+
+def test_help_shows_an_example(capsys):
+    with pytest.raises(SystemExit) as stop:
+        main(["calibrate", "--help"])
+    assert stop.value.code == 0
+    text = capsys.readouterr().out
+    assert "example:" in text and "rangefuse calibrate " in text and "--bits 10" in text
+
+
+def test_read_pairs_skips_blank_lines_and_reports_rows(tmp_path):
+    src = tmp_path / "p.csv"
+    src.write_text(" range_m , volts\n0.1,2.3\n\n0.2, 2.5\n")
+    r, v, kind, rows = read_pairs(str(src))
+    np.testing.assert_array_equal(r, [0.1, 0.2])
+    np.testing.assert_array_equal(v, [2.3, 2.5])
+    assert kind == "volts" and rows.tolist() == [2, 4]
+
+
+def test_write_atomic_replaces_whole_files_and_leaves_no_temporary(tmp_path):
+    target = tmp_path / "a.toml"
+    target.write_text("old")
+    write_atomic(str(target), "new text")
+    assert target.read_text() == "new text"
+    assert os.listdir(tmp_path) == ["a.toml"]
+    with pytest.raises(InputError):
+        write_atomic(str(tmp_path / "missing" / "b.toml"), "x")
+
+
+# ------------------------------------------------------------------ TOML
+
+def test_toml_dumps_reads_back_exactly():
+    # Floats are written with repr, the shortest string that reads back to the same double
+    # (Python's float repr, Steele & White 1990 / Gay 1990), so a round trip is exact.
+    data = {"name": 'a "quoted"\tname', "flag": True, "n": 3,
+            "x": [0.1, 1e-300, 2.5e16, -0.0, math.inf],
+            "curve": {"p": 1.90063, "m": [[1.0 / 3, 2.0 / 3], [0.5, 0.25]], "deeper": {"k": 1}},
+            "sensor": [{"id": "left", "w": 1.0}, {"id": "right", "w": 2.0}],
+            "odd key": 1}
+    back = loads(dumps(data))
+    assert back == data
+    assert math.isnan(loads(dumps({"v": math.nan}))["v"])
+
+
+def test_toml_syntax_error_names_file_and_line():
+    with pytest.raises(ConfigError) as err:
+        loads('[curve]\nmodel = "table"\nrange_m = [0.1, 0.2\n', "left.toml")
+    assert err.value.file == "left.toml" and err.value.row in (3, 4)
+    with pytest.raises(ConfigError) as err:
+        loads("a = 1\nb = = 2\n", "x.toml")
+    assert err.value.row == 2 and "x.toml" in str(err.value)
