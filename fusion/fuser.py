@@ -144,11 +144,15 @@ class Fuser:
     ('accepted', 0.5)
     """
 
+    #: The ``estimator.kind`` this class runs; a subclass with another engine (the
+    #: particle estimator) overrides it, its message and `_kernel`.
+    estimator_kind = "kalman"
+    _kind_hint = ("Fuser runs the Kalman estimator; use "
+                  "fusion.estimators.particle.ParticleFuser for kind='particle'")
+
     def __init__(self, rig: Rig):
-        if rig.estimator.kind != "kalman":
-            raise InputError("Fuser runs the Kalman estimator; use "
-                             "fusion.estimators.particle.ParticleFuser for kind='particle'",
-                             field="estimator.kind")
+        if rig.estimator.kind != self.estimator_kind:
+            raise InputError(self._kind_hint, field="estimator.kind")
         self.rig = rig
         self.sensor_names = tuple(rig.sensors)
         self.directions = tuple(rig.directions)

@@ -46,7 +46,8 @@ def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
         "P": np.zeros((n_dir, MAXC, 2, 2)),
         "NH": np.zeros(n_dir, np.int64),
         "T": np.full(n_dir, -np.inf),
-        "RBT": np.zeros((n_dir, RB)), "RBZ": np.zeros((n_dir, RB)), "RBV": np.zeros((n_dir, RB)),
+        "RBT": np.zeros((n_dir, RB)), "RBZ": np.zeros((n_dir, RB, 2)),
+        "RBV": np.zeros((n_dir, RB, 2)),
         "RBN": np.zeros(n_dir, np.int64),
         "LAST_RAW": np.full(n_sensor, np.nan), "LAST_NEW_T": np.full(n_sensor, -np.inf),
     }
@@ -135,46 +136,70 @@ def _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH):
 
 @njit(cache=True)
 def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, out):
-    """Consistent rejected readings: a weighted line through them fits within 3 sigma."""
-    # drop entries older than the window (buffer is kept in time order)
+    """Do the rejected readings of the last `window` seconds tell one consistent story?
+
+    Each buffered reading has one or two candidates. For each candidate of the newest
+    reading (an anchor), every reading contributes its candidate nearest the anchor, and
+    a weighted straight line through them must fit every one within three sigma (plus a
+    centimetre). Returns how many anchors pass; ``out[k]`` = (range now, rate, variance).
+    """
     n = RBN[d]
     j = 0
     for i in range(n):
         if t - RBT[d, i] <= window:
             RBT[d, j] = RBT[d, i]
-            RBZ[d, j] = RBZ[d, i]
-            RBV[d, j] = RBV[d, i]
+            for c in range(2):
+                RBZ[d, j, c] = RBZ[d, i, c]
+                RBV[d, j, c] = RBV[d, i, c]
             j += 1
     RBN[d] = j
     n = j
     if n < nmin:
-        return False
-    sw = 0.0
-    st = 0.0
-    sz = 0.0
-    for i in range(n):
-        w = 1.0 / RBV[d, i]
-        sw += w
-        st += w * (RBT[d, i] - t)
-        sz += w * RBZ[d, i]
-    tm = st / sw
-    zm = sz / sw
-    stt = 0.0
-    stz = 0.0
-    for i in range(n):
-        w = 1.0 / RBV[d, i]
-        dt = RBT[d, i] - t - tm
-        stt += w * dt * dt
-        stz += w * dt * (RBZ[d, i] - zm)
-    slope = stz / stt if stt > 0 else 0.0
-    for i in range(n):
-        pred = zm + slope * (RBT[d, i] - t - tm)
-        if abs(RBZ[d, i] - pred) > 3.0 * math.sqrt(RBV[d, i]) + 0.01:
-            return False
-    out[0] = zm + slope * (0.0 - tm)
-    out[1] = slope
-    out[2] = 1.0 / sw
-    return True
+        return 0
+    npass = 0
+    zc = np.empty(RB)
+    vc = np.empty(RB)
+    for anchor in range(2):
+        a = RBZ[d, n - 1, anchor]
+        if math.isnan(a):
+            continue
+        for i in range(n):
+            best = 0
+            if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
+                                             abs(RBZ[d, i, 1] - a) < abs(RBZ[d, i, 0] - a)):
+                best = 1
+            zc[i] = RBZ[d, i, best]
+            vc[i] = RBV[d, i, best]
+        sw = 0.0
+        st = 0.0
+        sz = 0.0
+        for i in range(n):
+            w = 1.0 / vc[i]
+            sw += w
+            st += w * (RBT[d, i] - t)
+            sz += w * zc[i]
+        tm = st / sw
+        zm = sz / sw
+        stt = 0.0
+        stz = 0.0
+        for i in range(n):
+            w = 1.0 / vc[i]
+            dt = RBT[d, i] - t - tm
+            stt += w * dt * dt
+            stz += w * dt * (zc[i] - zm)
+        slope = stz / stt if stt > 0 else 0.0
+        ok = True
+        for i in range(n):
+            pred = zm + slope * (RBT[d, i] - t - tm)
+            if abs(zc[i] - pred) > 3.0 * math.sqrt(vc[i]) + 0.01:
+                ok = False
+                break
+        if ok:
+            out[npass, 0] = zm + slope * (0.0 - tm)
+            out[npass, 1] = slope
+            out[npass, 2] = 1.0 / sw
+            npass += 1
+    return npass
 
 
 @njit(cache=True)
@@ -216,7 +241,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
     used = np.empty(3 * MAXC, np.bool_)
     grp = np.empty(3 * MAXC, np.int64)
     mom = np.empty(5)
-    ra = np.empty(3)
+    ra = np.empty((2, 3))
     for ii in range(n):
         i = order[ii]
         d = ev_dir[i]
@@ -301,27 +326,30 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         if m == RB:
                             for j in range(RB - 1):
                                 RBT[d, j] = RBT[d, j + 1]
-                                RBZ[d, j] = RBZ[d, j + 1]
-                                RBV[d, j] = RBV[d, j + 1]
+                                for c in range(2):
+                                    RBZ[d, j, c] = RBZ[d, j + 1, c]
+                                    RBV[d, j, c] = RBV[d, j + 1, c]
                             m = RB - 1
-                        c0 = 0 if not math.isnan(z[0]) else 1
                         RBT[d, m] = t
-                        RBZ[d, m] = z[c0]
-                        RBV[d, m] = sg[c0] * sg[c0]
+                        for c in range(2):
+                            RBZ[d, m, c] = z[c]
+                            RBV[d, m, c] = sg[c] * sg[c]
                         RBN[d] = m + 1
-                        if _reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra):
-                            NH[d] = 1
-                            W[d, 0] = 1.0
-                            X[d, 0, 0] = ra[0]
-                            X[d, 0, 1] = ra[1]
-                            P[d, 0, 0, 0] = ra[2] + sg[c0] * sg[c0]
-                            P[d, 0, 0, 1] = 0.0
-                            P[d, 0, 1, 0] = 0.0
-                            P[d, 0, 1, 1] = init_rate * init_rate
+                        npass = _reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra)
+                        if npass > 0:
+                            NH[d] = npass
+                            for k in range(npass):
+                                W[d, k] = 1.0 / npass
+                                X[d, k, 0] = ra[k, 0]
+                                X[d, k, 1] = ra[k, 1]
+                                P[d, k, 0, 0] = ra[k, 2] * reacq_n
+                                P[d, k, 0, 1] = 0.0
+                                P[d, k, 1, 0] = 0.0
+                                P[d, k, 1, 1] = init_rate * init_rate
                             RBN[d] = 0
                             code = REACQUIRED
-                            branch = c0
-                            bprob = 1.0
+                            branch = 0
+                            bprob = 1.0 / npass
                 else:
                     tot = 0.0
                     for j in range(nchild):
@@ -409,6 +437,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         innov = best_y
                         nis = best_nis
                     else:
+                        # an accepted reading says the track is not lost
+                        RBN[d] = 0
                         branch = 0 if pb0 >= pb1 else 1
                         bprob = (pb0 if branch == 0 else pb1) / (pb0 + pb1)
                         code = ACCEPTED if bprob >= amb else AMBIGUOUS

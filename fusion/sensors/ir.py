@@ -19,7 +19,7 @@ from .triangulation import TriangulationCurve
 __all__ = ["TriangulationRanger"]
 
 _KEYS = {"name", "kind", "direction", "output", "adc_bits", "adc_vref", "volts_sigma",
-         "hold_s", "offset_m", "latency_s", "near_min_m", "curve"}
+         "hold_s", "offset_m", "latency_s", "near_min_m", "gain_sigma", "curve"}
 
 
 @dataclass(frozen=True)
@@ -46,6 +46,9 @@ class TriangulationRanger:
         Time from the measurement to the reading's timestamp.
     near_min_m : float
         Smallest near-side range that is physically possible (housing, window).
+    gain_sigma : float
+        Relative spread of the output with target reflectivity and angle (a
+        proportional voltage term, 1 sigma); 0 for an ideal unit.
     """
 
     name: str
@@ -59,6 +62,7 @@ class TriangulationRanger:
     offset_m: float = 0.0
     latency_s: float = 0.0
     near_min_m: float = 0.01
+    gain_sigma: float = 0.0
     kind: str = field(default="triangulation", init=False)
 
     # --- description -------------------------------------------------------------
@@ -77,7 +81,7 @@ class TriangulationRanger:
         kw = {}
         for key, typ in (("output", str), ("adc_bits", int), ("adc_vref", float),
                          ("volts_sigma", float), ("hold_s", float), ("offset_m", float),
-                         ("latency_s", float), ("near_min_m", float)):
+                         ("latency_s", float), ("near_min_m", float), ("gain_sigma", float)):
             if key in d:
                 kw[key] = _typed(d[key], typ, where, f"sensor.{name}.{key}")
         obj = cls(name=_typed(d.get("name"), str, where, "sensor.name"),
@@ -98,7 +102,7 @@ class TriangulationRanger:
             if not (np.isfinite(v) and v > 0):
                 raise ConfigError(f"{key} must be a positive number, got {v}", file=where,
                                   field=f"{f}.{key}")
-        for key in ("hold_s", "latency_s", "near_min_m"):
+        for key in ("hold_s", "latency_s", "near_min_m", "gain_sigma"):
             v = getattr(self, key)
             if not (np.isfinite(v) and v >= 0):
                 raise ConfigError(f"{key} must be >= 0, got {v}", file=where, field=f"{f}.{key}")
@@ -108,7 +112,8 @@ class TriangulationRanger:
                 "output": self.output, "adc_bits": self.adc_bits, "adc_vref": self.adc_vref,
                 "volts_sigma": self.volts_sigma, "hold_s": self.hold_s,
                 "offset_m": self.offset_m, "latency_s": self.latency_s,
-                "near_min_m": self.near_min_m, "curve": self.curve.to_dict()}
+                "near_min_m": self.near_min_m, "gain_sigma": self.gain_sigma,
+                "curve": self.curve.to_dict()}
 
     # --- model ---------------------------------------------------------------------
     def to_volts(self, raw) -> np.ndarray:
@@ -177,14 +182,18 @@ class TriangulationRanger:
         above = v > vpk + 3 * sv
         near, far = c.ranges(np.minimum(v, vpk))
         no_target = v < c.volts(c.max_range_m) - 3 * sv
-        far = np.where(far > c.max_range_m, np.nan, far)
+        # Beyond the valid span the far side is too flat to use, and "target beyond the
+        # span" explains a low voltage far more often than a target in contact does.
+        beyond = far > c.max_range_m
         near = np.where(near < self.near_min_m, np.nan, near)
         at_peak = v >= vpk
         far = np.where(at_peak, c.peak_range_m, far)
         near = np.where(at_peak, np.nan, near)
-        out = (~bad) & (above | no_target | (np.isnan(far) & np.isnan(near)))
+        out = (~bad) & (above | no_target | beyond | (np.isnan(far) & np.isnan(near)))
         code[out] = D.OUT_OF_RANGE
         ok = code == D.ACCEPTED
+        # Reflectivity and angle of the target scale the return: a proportional term.
+        sv = np.hypot(sv, self.gain_sigma * np.where(np.isfinite(v), v, 0.0))
         for col, r in ((0, far), (1, near)):
             r = np.where(ok, r, np.nan)
             with np.errstate(divide="ignore", invalid="ignore"):

@@ -1,0 +1,454 @@
+"""Tuning: estimate process and sensor noise from logs.
+
+Two objectives:
+
+* ``innovations`` — maximise the innovations log-likelihood over the noise parameters,
+  across one or many logs (the prediction-error decomposition, Schweppe 1965). Needs no
+  ground truth.
+* ``truth`` — when the logs carry ground truth: each sensor's noise is fitted directly to
+  its residuals against truth (maximum likelihood of the sensor's sigma model, with
+  outliers trimmed), then the process noise by the innovations likelihood with those
+  sensor noises held.
+
+Approximate 95 % intervals come from the curvature of the log-likelihood at the optimum
+(observed information, in log-parameters).
+
+References
+----------
+F. C. Schweppe, "Evaluation of likelihood functions for Gaussian signals", IEEE Trans.
+Information Theory 11(1), 61-70 (1965).
+A. C. Harvey, *Forecasting, Structural Time Series Models and the Kalman Filter*,
+Cambridge University Press (1989), §3.4: the prediction-error decomposition.
+"""
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import math
+import os
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize
+
+from fusion import decisions as D
+from fusion.errors import InputError
+from fusion.fuser import Fuser, _params
+from fusion.rig import Rig
+
+from . import metrics as M
+from ._io import atomic_output, refuse_overwrite
+from .logfile import open_log
+from .run import _rig_for, _truth_interp, load_rig
+
+__all__ = ["tune", "TuneResult", "Parameter", "register"]
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One tunable value: where it lives in the rig and its current value."""
+
+    name: str            # e.g. "estimator.accel_psd", "sensor.echo_front.sigma_m"
+    value: float
+    lower: float = 1e-9
+    upper: float = 1e3
+
+
+@dataclass
+class TuneResult:
+    """Tuned parameters with intervals, and the fit before and after."""
+
+    objective: str
+    params: list                  # list of Parameter (tuned values)
+    initial: list                 # list of Parameter (values before)
+    ci95: dict                    # name -> (low, high)
+    loglik_before: float
+    loglik_after: float
+    nis_before: tuple             # (mean, n, (lo, hi))
+    nis_after: tuple
+    rig: Rig
+    history: list = field(default_factory=list)
+    seconds: float = 0.0
+    n_readings: int = 0
+    message: str = ""
+
+    def summary(self) -> str:
+        L = [f"tuning by {self.objective} over {self.n_readings} readings in "
+             f"{self.seconds:.1f} s ({len(self.history)} likelihood evaluations): {self.message}",
+             "", f"  {'parameter':<34}{'before':>12}{'tuned':>12}{'95% interval':>26}"]
+        for p0, p in zip(self.initial, self.params):
+            lo, hi = self.ci95.get(p.name, (math.nan, math.nan))
+            L.append(f"  {p.name:<34}{p0.value:>12.4g}{p.value:>12.4g}"
+                     f"{'[' + format(lo, '.4g') + ', ' + format(hi, '.4g') + ']':>26}")
+        L.append("")
+        L.append(f"  innovations log-likelihood: {self.loglik_before:.1f} -> {self.loglik_after:.1f}")
+        for label, (mean, n, (lo, hi)) in (("before", self.nis_before), ("after", self.nis_after)):
+            L.append(f"  time-averaged NIS {label}: {mean:.3f} over {n} readings, 95% bounds "
+                     f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
+        return "\n".join(L)
+
+    def plot(self, path=None):
+        from .plots import plot_convergence
+        return plot_convergence(self.history, out=path)
+
+    def value(self, name) -> float:
+        for p in self.params:
+            if p.name == name:
+                return p.value
+        raise KeyError(name)
+
+
+# --- parameters in a rig ------------------------------------------------------------------
+def default_parameters(rig: Rig, latency=False) -> list:
+    ps = [Parameter("estimator.accel_psd", rig.estimator.accel_psd, 1e-6, 1e3)]
+    for name, s in rig.sensors.items():
+        if s.kind == "triangulation":
+            ps.append(Parameter(f"sensor.{name}.volts_sigma", s.volts_sigma, 1e-5, 1.0))
+        else:
+            ps.append(Parameter(f"sensor.{name}.sigma_m", s.sigma_m, 1e-5, 1.0))
+            ps.append(Parameter(f"sensor.{name}.sigma_frac", max(s.sigma_frac, 1e-5), 1e-6, 0.5))
+        if latency:
+            ps.append(Parameter(f"sensor.{name}.latency_s", s.latency_s, -0.2, 0.2))
+    return ps
+
+
+def apply(rig: Rig, params) -> Rig:
+    """A rig with the given parameter values put in place."""
+    est = rig.estimator
+    sensors = dict(rig.sensors)
+    for p in params:
+        parts = p.name.split(".")
+        if parts[0] == "estimator":
+            est = dataclasses.replace(est, **{parts[1]: float(p.value)})
+        elif parts[0] == "sensor":
+            key = parts[-1]
+            sname = ".".join(parts[1:-1])
+            sensors[sname] = dataclasses.replace(sensors[sname], **{key: float(p.value)})
+        else:
+            raise InputError(f"unknown parameter {p.name!r}", field="params")
+    return rig.replace(estimator=est, sensors=sensors)
+
+
+# --- the likelihood machine ---------------------------------------------------------------
+class _Problem:
+    """Logs decoded once; the estimator re-run for each parameter vector."""
+
+    def __init__(self, logs, rig, params, latency):
+        self.rig = rig
+        self.params = params
+        self.latency = latency
+        self.preps = []
+        self.truths = []
+        self.n = 0
+        fuser = Fuser(rig)
+        self.sensor_names = fuser.sensor_names
+        for path in logs:
+            with open_log(path) as log:
+                _rig_for(log, rig, path)
+                f = Fuser(rig)
+                readings = {}
+                for name in log.sensors:
+                    s = log.read_sensor(name)
+                    readings[name] = (s.t_s, s.raw, s.ping_t_s)
+                env = {}
+                if rig.air.stream and rig.air.stream in log.environments:
+                    env["air"] = log.environment(rig.air.stream)
+                if rig.air.humidity_stream and rig.air.humidity_stream in log.environments:
+                    env["humidity"] = log.environment(rig.air.humidity_stream)
+                prep = f.prepare(readings, env)
+                if prep is None:
+                    continue
+                self.preps.append(prep)
+                self.truths.append({d: log.truth(d) for d in rig.directions})
+                self.n += len(prep["sensor"])
+        if not self.preps:
+            raise InputError("the logs hold no readings to tune on", field="/sensors")
+        self.base = {p.name: p.value for p in params}
+        self._split_sigma()
+
+    def _split_sigma(self):
+        """Per prepared reading, the part of sigma^2 that the tuned terms do not set."""
+        self.other_var = []
+        for prep in self.preps:
+            ov = np.zeros_like(prep["sg"])
+            for si, name in enumerate(self.sensor_names):
+                s = self.rig.sensors[name]
+                m = prep["sensor"] == si
+                if s.kind == "echo":
+                    r = prep["raw_m"][m]
+                    tuned = s.sigma_m ** 2 + (s.sigma_frac * r) ** 2
+                    ov[m, 0] = np.maximum(prep["sg"][m, 0] ** 2 - tuned, 0.0)
+            self.other_var.append(ov)
+
+    def sigmas(self, values, k):
+        prep = self.preps[k]
+        sg = prep["sg"].copy()
+        for si, name in enumerate(self.sensor_names):
+            s = self.rig.sensors[name]
+            m = prep["sensor"] == si
+            if s.kind == "triangulation":
+                key = f"sensor.{name}.volts_sigma"
+                if key in values:
+                    from fusion.sensors.adc import adc_quantisation_sigma_v
+                    q = adc_quantisation_sigma_v(s.adc_bits, s.adc_vref) if s.output == "counts" else 0.0
+                    f = math.hypot(values[key], q) / math.hypot(s.volts_sigma, q)
+                    sg[m] *= f
+            else:
+                a = values.get(f"sensor.{name}.sigma_m", s.sigma_m)
+                b = values.get(f"sensor.{name}.sigma_frac", s.sigma_frac)
+                r = prep["raw_m"][m]
+                sg[m, 0] = np.sqrt(self.other_var[k][m, 0] + a * a + (b * r) ** 2)
+        return sg
+
+    def run(self, values):
+        """Runs with parameter values (dict); returns total loglik, NIS stats, batches."""
+        est = dataclasses.replace(self.rig.estimator,
+                                  accel_psd=values.get("estimator.accel_psd",
+                                                       self.rig.estimator.accel_psd))
+        rig = self.rig.replace(estimator=est)
+        total = 0.0
+        nis_sum, nis_n = 0.0, 0
+        batches = []
+        for k, prep in enumerate(self.preps):
+            f = Fuser(rig)
+            p2 = dict(prep)
+            p2["sg"] = self.sigmas(values, k)
+            if self.latency:
+                t = prep["t_meas"].copy()
+                for si, name in enumerate(self.sensor_names):
+                    key = f"sensor.{name}.latency_s"
+                    if key in values:
+                        m = prep["sensor"] == si
+                        t[m] = t[m] + self.rig.sensors[name].latency_s - values[key]
+                p2["t_meas"] = t
+            b = f.run_prepared(p2)
+            acc = b.code < D.FIRST_REJECT
+            gated = (b.code == D.GATED) | (b.code == D.CROSSTALK)
+            total += float(np.nansum(b.loglik[acc | gated]))
+            fin = acc & np.isfinite(b.nis)
+            nis_sum += float(b.nis[fin].sum())
+            nis_n += int(fin.sum())
+            batches.append(b)
+        return total, (nis_sum / max(nis_n, 1), nis_n, M.nis_bounds(nis_n)), batches
+
+
+def _fit_sensor_noise_to_truth(problem: _Problem) -> dict:
+    """Each sensor's sigma model fitted to its residuals against truth (trimmed ML)."""
+    out = {}
+    for si, name in enumerate(problem.sensor_names):
+        s = problem.rig.sensors[name]
+        res, rr, base = [], [], []
+        for k, prep in enumerate(problem.preps):
+            tr_d = problem.truths[k].get(s.direction)
+            if tr_d is None:
+                continue
+            m = (prep["sensor"] == si) & (prep["code"] == D.ACCEPTED)
+            tr = _truth_interp(tr_d, prep["t_meas"][m])
+            z = prep["z"][m]
+            # the candidate on the truth's side of the curve
+            col = np.where(np.isfinite(z[:, 1]) & (np.abs(z[:, 1] - tr) < np.abs(z[:, 0] - tr)), 1, 0)
+            zz = z[np.arange(len(z)), col]
+            ok = np.isfinite(zz) & np.isfinite(tr)
+            res.append((zz - tr)[ok])
+            rr.append(prep["raw_m"][m][ok] if s.kind == "echo" else zz[ok])
+            base.append(prep["sg"][m][np.arange(len(z)), col][ok])
+        if not res:
+            continue
+        e = np.concatenate(res)
+        r = np.concatenate(rr)
+        sb = np.concatenate(base)
+        if e.size < 20:
+            continue
+        keep = np.ones(e.size, bool)
+        if s.kind == "triangulation":
+            # sigma = f * base: closed form, trimmed at 4 sigma
+            for _ in range(5):
+                f = math.sqrt(np.mean((e[keep] / sb[keep]) ** 2))
+                keep = np.abs(e) <= 4 * f * sb
+            from fusion.sensors.adc import adc_quantisation_sigma_v
+            q = adc_quantisation_sigma_v(s.adc_bits, s.adc_vref) if s.output == "counts" else 0.0
+            tot = f * math.hypot(s.volts_sigma, q)
+            out[f"sensor.{name}.volts_sigma"] = math.sqrt(max(tot * tot - q * q, 1e-12))
+        else:
+            ov = np.maximum(sb ** 2 - (s.sigma_m ** 2 + (s.sigma_frac * r) ** 2), 0)
+            th = np.array([math.log(s.sigma_m), math.log(max(s.sigma_frac, 1e-5))])
+            for _ in range(4):
+                def nll(t):
+                    v = ov[keep] + math.exp(2 * t[0]) + (math.exp(t[1]) * r[keep]) ** 2
+                    return 0.5 * np.sum(np.log(v) + e[keep] ** 2 / v)
+                th = optimize.minimize(nll, th, method="Nelder-Mead",
+                                       options={"xatol": 1e-4, "fatol": 1e-6}).x
+                v = ov + math.exp(2 * th[0]) + (math.exp(th[1]) * r) ** 2
+                keep = np.abs(e) <= 4 * np.sqrt(v)
+            out[f"sensor.{name}.sigma_m"] = math.exp(th[0])
+            out[f"sensor.{name}.sigma_frac"] = math.exp(th[1])
+    return out
+
+
+def _hessian(f, x, h=0.05):
+    n = len(x)
+    H = np.zeros((n, n))
+    f0 = f(x)
+    fp = np.zeros(n)
+    fm = np.zeros(n)
+    for i in range(n):
+        e = np.zeros(n)
+        e[i] = h
+        fp[i] = f(x + e)
+        fm[i] = f(x - e)
+        H[i, i] = (fp[i] - 2 * f0 + fm[i]) / h ** 2
+    for i in range(n):
+        for j in range(i + 1, n):
+            ei = np.zeros(n)
+            ej = np.zeros(n)
+            ei[i] = h
+            ej[j] = h
+            H[i, j] = H[j, i] = (f(x + ei + ej) - fp[i] - fp[j] + f0) / h ** 2
+    return H
+
+
+def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_evals=200,
+         intervals=True) -> TuneResult:
+    """Tune a rig's noise parameters on one or more logs.
+
+    Parameters
+    ----------
+    logs : path or list of paths
+    rig : Rig or path, optional
+        Starting rig (default: the one embedded in the first log).
+    objective : {"auto", "innovations", "truth"}
+        "auto" uses "truth" when every log carries ground truth.
+    params : list of str, optional
+        Parameter names to tune (default: process noise and every sensor's noise terms).
+    latency : bool
+        Also tune each sensor's latency (innovations objective).
+    max_evals : int
+        Cap on likelihood evaluations for the optimiser.
+    intervals : bool
+        Compute 95 % intervals from the likelihood's curvature.
+
+    Returns
+    -------
+    TuneResult
+    """
+    t0 = time.perf_counter()
+    paths = [os.fspath(logs)] if isinstance(logs, (str, os.PathLike)) else [os.fspath(p) for p in logs]
+    rig = load_rig(rig)
+    if rig is None:
+        with open_log(paths[0]) as log:
+            rig = _rig_for(log, None, paths[0])
+    allp = default_parameters(rig, latency)
+    if params:
+        names = {p.name for p in allp}
+        for n in params:
+            if n not in names:
+                raise InputError(f"unknown parameter {n!r}; tunable: {', '.join(sorted(names))}",
+                                 field="--param")
+        allp = [p for p in allp if p.name in params]
+    prob = _Problem(paths, rig, allp, latency)
+    has_truth = all(any(v is not None for v in tr.values()) for tr in prob.truths)
+    if objective == "auto":
+        objective = "truth" if has_truth else "innovations"
+    if objective == "truth" and not has_truth:
+        raise InputError("objective 'truth' needs ground truth in every log (/truth)",
+                         file=paths[0], field="/truth")
+    values0 = {p.name: p.value for p in allp}
+    ll0, nis0, _ = prob.run(values0)
+    history = [{"iteration": 0, "loglik": ll0, "params": dict(values0)}]
+    fixed = {}
+    if objective == "truth":
+        fixed = _fit_sensor_noise_to_truth(prob)
+        fixed = {k: v for k, v in fixed.items() if k in values0}
+    free = [p for p in allp if p.name not in fixed]
+    lin = [p.name.endswith("latency_s") for p in free]
+
+    def to_values(x):
+        v = dict(values0)
+        v.update(fixed)
+        for p, xi, is_lin in zip(free, x, lin):
+            v[p.name] = float(xi) if is_lin else float(math.exp(xi))
+        return v
+
+    cache = {}
+
+    def nll(x):
+        key = tuple(np.round(x, 10))
+        if key not in cache:
+            ll, _, _ = prob.run(to_values(x))
+            cache[key] = -ll
+            history.append({"iteration": len(history), "loglik": ll, "params": to_values(x)})
+        return cache[key]
+
+    x0 = np.array([p.value if is_lin else math.log(max(p.value, p.lower))
+                   for p, is_lin in zip(free, lin)])
+    bounds = [(p.lower, p.upper) if is_lin else (math.log(p.lower), math.log(p.upper))
+              for p, is_lin in zip(free, lin)]
+    message = "nothing to optimise"
+    x = x0
+    if len(free):
+        res = optimize.minimize(nll, x0, method="Powell", bounds=bounds,
+                                options={"maxfev": max_evals, "xtol": 1e-3, "ftol": 1e-7})
+        x = res.x
+        message = str(res.message)
+    values = to_values(x)
+    ci = {}
+    if intervals and len(free):
+        try:
+            H = _hessian(nll, x)
+            cov = np.linalg.inv(H)
+            sd = np.sqrt(np.clip(np.diag(cov), 0, np.inf))
+            for p, xi, s, is_lin in zip(free, x, sd, lin):
+                ci[p.name] = (xi - 1.96 * s, xi + 1.96 * s) if is_lin else \
+                    (math.exp(xi - 1.96 * s), math.exp(xi + 1.96 * s))
+        except np.linalg.LinAlgError:
+            message += "; likelihood curvature singular: no intervals"
+    if fixed and intervals:
+        message += "; sensor noise fitted to truth residuals (intervals only for the rest)"
+    ll1, nis1, _ = prob.run(values)
+    tuned = [dataclasses.replace(p, value=values[p.name]) for p in allp]
+    return TuneResult(objective=objective, params=tuned, initial=allp, ci95=ci,
+                      loglik_before=ll0, loglik_after=ll1, nis_before=nis0, nis_after=nis1,
+                      rig=apply(rig, tuned), history=history,
+                      seconds=time.perf_counter() - t0, n_readings=prob.n, message=message)
+
+
+# --- command line ---------------------------------------------------------------------------
+def register(sub):
+    p = sub.add_parser(
+        "tune", help="estimate process and sensor noise from logs; write a tuned rig",
+        description="Estimate the process noise and each sensor's noise parameters from "
+                    "one or more logs by maximising the innovations log-likelihood, or "
+                    "from residuals against ground truth when the logs carry it.",
+        epilog="example:\n  rangefuse tune datasets/tuning-run.h5 -o tuned.rig.toml "
+               "--objective innovations --plot tune.png",
+        formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("logs", nargs="+", metavar="LOG")
+    p.add_argument("--rig", help="starting rig (default: the one in the first log)")
+    p.add_argument("-o", "--out", required=True, metavar="TUNED.toml", help="tuned rig to write")
+    p.add_argument("--objective", choices=("auto", "innovations", "truth"), default="auto")
+    p.add_argument("--param", action="append", metavar="NAME",
+                   help="tune only this parameter (repeatable), e.g. estimator.accel_psd")
+    p.add_argument("--latency", action="store_true", help="also tune sensor latencies")
+    p.add_argument("--max-evals", type=int, default=200)
+    p.add_argument("--no-intervals", action="store_true", help="skip the curvature intervals")
+    p.add_argument("--plot", metavar="FIG.png", help="draw the tuner's convergence")
+    p.set_defaults(func=_main)
+
+
+def _main(args) -> int:
+    inputs = list(args.logs) + ([args.rig] if args.rig else [])
+    refuse_overwrite(args.out, inputs)
+    res = tune(args.logs, rig=args.rig, objective=args.objective, params=args.param,
+               latency=args.latency, max_evals=args.max_evals, intervals=not args.no_intervals)
+    print(res.summary())
+    with atomic_output(args.out, inputs=inputs) as tmp:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(f"# tuned by rangefuse tune ({res.objective}) from "
+                     f"{', '.join(os.path.basename(p) for p in args.logs)}\n")
+            fh.write(res.rig.to_toml())
+    print(f"tuned rig: {args.out}")
+    if args.plot:
+        res.plot(args.plot)
+        print(f"figure: {args.plot}")
+    return 0
