@@ -124,7 +124,7 @@ def _params(est, tau=None) -> np.ndarray:
     p[K.P_REACQ_W] = est.reacquire_window_s
     p[K.P_MAX_LAG] = est.max_lag_s
     p[K.P_INIT_RATE] = est.init_rate_sigma_mps
-    p[K.P_MERGE] = 0.25
+    p[K.P_MERGE] = 1.0
     return p
 
 
@@ -340,8 +340,10 @@ class Fuser:
         rx = np.where(has_ping, ping + tof, np.nan)
         suspect, definite = classify_crosstalk(rx, sensor, new, self._tau_min, self._tau_max,
                                                _CROSSTALK_TOL_S)
-        flags[suspect & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
-        code[definite & (code == D.ACCEPTED)] = D.CROSSTALK
+        # A timing match is symmetric: when unit a hears b's echo, b's own reading matches
+        # a's ping just as well. So a match only marks both suspect; the track decides
+        # (a suspect outside the gate is crosstalk, and suspects never start a track).
+        flags[(suspect | definite) & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
         horizon = np.nanmax(ping[has_ping]) - _PING_MEMORY_S
         self._pings = [(None, None) if p is None else (p[p >= horizon], tf[p >= horizon])
                        for p, tf in new]

@@ -232,6 +232,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
     max_lag = par[P_MAX_LAG]
     init_rate = par[P_INIT_RATE]
     merge_d2 = par[P_MERGE]
+    miss_keep = 100.0 * prune
     CW = np.empty(3 * MAXC)
     CX = np.empty((3 * MAXC, 2))
     CP = np.empty((3 * MAXC, 2, 2))
@@ -242,6 +243,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
     grp = np.empty(3 * MAXC, np.int64)
     mom = np.empty(5)
     ra = np.empty((2, 3))
+    jac = np.empty(2)
     for ii in range(n):
         i = order[ii]
         d = ev_dir[i]
@@ -296,6 +298,14 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                 T[d] = tt
                 nchild = 0
                 best_nis = math.inf
+                # Jacobian |dr/dv| of each candidate relative to the steepest one: for an IR
+                # reading both candidates explain the same voltage.
+                smin = math.inf
+                for c in range(2):
+                    if not math.isnan(z[c]) and sg[c] < smin:
+                        smin = sg[c]
+                for c in range(2):
+                    jac[c] = sg[c] / smin if not math.isnan(z[c]) else 0.0
                 best_y = math.nan
                 for k in range(nh):
                     for c in range(2):
@@ -310,7 +320,9 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                             best_y = y
                         if e <= gate:
                             _joseph(X[d, k], P[d, k], z[c], r, CX[nchild], CP[nchild])
-                            CW[nchild] = W[d, k] * math.exp(-0.5 * (e + LOG_2PI + math.log(S)))
+                            # x jac[c]: the likelihood of the raw reading, not of its range
+                            # image (a flat side of the IR curve maps a voltage to a wide range)
+                            CW[nchild] = W[d, k] * jac[c] * math.exp(-0.5 * (e + LOG_2PI + math.log(S)))
                             CB[nchild] = c
                             CNIS[nchild] = e
                             CY[nchild] = y
@@ -386,7 +398,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         bj = -1
                         bw = -1.0
                         for j in range(nchild):
-                            if not used[j] and CW[j] > bw:
+                            # an outlier hypothesis is kept only while it is a real contender
+                            if not used[j] and CW[j] > bw and (CB[j] >= 0 or CW[j] >= miss_keep):
                                 bw = CW[j]
                                 bj = j
                         if bj < 0 or bw < prune:

@@ -63,12 +63,15 @@ Decisions
     branch's side of the peak. ``loglik`` is the log predictive density of the reading
     under its model: per metre for echo readings, per volt for IR readings.
 Re-acquisition
-    Gated readings go to the re-acquisition buffer of the Kalman path: when
-    ``reacquire_count`` mutually consistent ones fall inside ``reacquire_window_s``, the
-    particles are drawn afresh around the line through them (decision *reacquired*).
+    Gated readings go to the re-acquisition buffer of the Kalman path (both IR
+    candidates; an accepted reading empties it): when ``reacquire_count`` mutually
+    consistent ones fall inside ``reacquire_window_s``, the particles are drawn afresh
+    around the line through them, in equal groups when two stories fit (decision
+    *reacquired*, branch probability 1 / number of stories, as in the Kalman path).
 Determinism
-    Each direction has its own random stream (xoshiro256+, Blackman & Vigna 2021) whose
-    state lives in the estimator state, seeded from ``seed``: a run is reproducible, and
+    Each direction has its own random stream (xoshiro256++, Blackman & Vigna 2021; normals
+    by the ziggurat of Marsaglia & Tsang 2000) whose state lives in the estimator state,
+    seeded from ``seed``: a run is reproducible, and
     feeding the same readings one `push` at a time or in `process` chunks gives the same
     numbers.
 
@@ -84,9 +87,11 @@ S. Thrun, W. Burgard and D. Fox, *Probabilistic Robotics*, MIT Press (2005), §6
 Y. Bar-Shalom, X. R. Li and T. Kirubarajan, *Estimation with Applications to Tracking and
 Navigation*, Wiley (2001): the white-acceleration model (§6.2), NIS gating (§5.4).
 D. Blackman and S. Vigna, "Scrambled linear pseudorandom number generators", ACM Trans.
-Math. Software 47(4), 36 (2021): xoshiro256+ and the splitmix64 seeder.
-G. E. P. Box and M. E. Muller, "A note on the generation of random normal deviates",
-Ann. Math. Stat. 29(2), 610-611 (1958).
+Math. Software 47(4), 36 (2021): xoshiro256++ and the splitmix64 seeder.
+G. Marsaglia and W. W. Tsang, "The ziggurat method for generating random variables",
+J. Statistical Software 5(8) (2000).
+G. Marsaglia, "Generating a variable from the tail of the normal distribution",
+Technometrics 6(1), 101-102 (1964).
 """
 from __future__ import annotations
 
@@ -151,13 +156,39 @@ def _splitmix64(x):
 
 
 def _seed_streams(seed: int, n_dir: int) -> np.ndarray:
-    """xoshiro256+ states, one independent stream per direction, from one seed."""
+    """xoshiro256++ states, one independent stream per direction, from one seed."""
     out = np.zeros((n_dir, 4), np.uint64)
     for d in range(n_dir):
         x = (int(seed) * 0x632BE59BD9B4E019 + d * 0xD1B54A32D192ED03) & _MASK64
         for j in range(4):
             x, out[d, j] = _splitmix64(x)
     return out
+
+
+def _ziggurat_tables(n=256, r=3.6541528853610088):
+    """Layer tables of the ziggurat for the standard normal (Marsaglia & Tsang 2000).
+
+    ``n`` strips of equal area ``v`` under ``f(x) = exp(-x^2/2)``: the base strip is the
+    box ``[0, r] x [0, f(r)]`` plus the tail beyond ``r``, so ``v = r f(r) + int_r^inf f``
+    and its equivalent width is ``x_0 = v / f(r)``; above it ``x_{i+1} = f^-1(f(x_i) +
+    v / x_i)`` down to ``x_n = 0``. ``r`` is the value for 256 strips given there.
+    """
+    f = lambda x: math.exp(-0.5 * x * x)  # noqa: E731
+    v = r * f(r) + math.sqrt(math.pi / 2.0) * math.erfc(r / math.sqrt(2.0))
+    x = np.zeros(n + 1)
+    x[0] = v / f(r)
+    x[1] = r
+    for i in range(1, n - 1):
+        x[i + 1] = math.sqrt(-2.0 * math.log(f(x[i]) + v / x[i]))
+    x[n] = 0.0
+    k = np.array([int(math.ldexp(x[i + 1] / x[i], 53)) for i in range(n)], np.uint64)
+    w = x[:n] * 2.0 ** -53
+    fx = np.exp(-0.5 * x * x)
+    return k, w, fx, r
+
+
+# Global arrays are frozen into the compiled code as constants.
+_ZK, _ZW, _ZF, _ZR = _ziggurat_tables()
 
 
 @njit(cache=True, inline="always")
@@ -167,7 +198,9 @@ def _rotl(x, k):
 
 @njit(cache=True, inline="always")
 def _xoshiro(s0, s1, s2, s3):
-    out = s0 + s3
+    """xoshiro256++ (Blackman & Vigna 2021): 64 random bits and the next state; every
+    bit is usable (the ziggurat takes its strip index from the low bits)."""
+    out = _rotl(s0 + s3, 23) + s0
     t = s1 << np.uint64(17)
     s2 ^= s0
     s3 ^= s1
@@ -179,15 +212,48 @@ def _xoshiro(s0, s1, s2, s3):
 
 
 @njit(cache=True, inline="always")
+def _unit(u):
+    return float(u >> np.uint64(11)) * _U53
+
+
+@njit(cache=True, inline="always")
+def _gauss(s0, s1, s2, s3):
+    """One standard normal by the ziggurat (Marsaglia & Tsang 2000) and the new state.
+
+    About 99 % of draws take one 64-bit word and one comparison; the rest fall in a
+    wedge (accepted against the density) or the base strip's tail beyond ``r``, drawn
+    by Marsaglia's (1964) exponential method.
+    """
+    while True:
+        u, s0, s1, s2, s3 = _xoshiro(s0, s1, s2, s3)
+        i = int(u & np.uint64(255))
+        neg = (u >> np.uint64(8)) & np.uint64(1)
+        j = u >> np.uint64(11)
+        x = float(j) * _ZW[i]
+        if j < _ZK[i]:
+            return (-x if neg else x), s0, s1, s2, s3
+        if i == 0:
+            while True:
+                a, s0, s1, s2, s3 = _xoshiro(s0, s1, s2, s3)
+                b, s0, s1, s2, s3 = _xoshiro(s0, s1, s2, s3)
+                xx = -math.log(1.0 - _unit(a)) / _ZR
+                yy = -math.log(1.0 - _unit(b))
+                if yy + yy > xx * xx:
+                    break
+            x = _ZR + xx
+            return (-x if neg else x), s0, s1, s2, s3
+        c, s0, s1, s2, s3 = _xoshiro(s0, s1, s2, s3)
+        y = _ZF[i] + _unit(c) * (_ZF[i + 1] - _ZF[i])
+        if y < math.exp(-0.5 * x * x):
+            return (-x if neg else x), s0, s1, s2, s3
+
+
+@njit(cache=True)
 def _gauss_pair(s0, s1, s2, s3):
-    """Two independent standard normals (Box & Muller 1958) and the new stream state."""
-    a, s0, s1, s2, s3 = _xoshiro(s0, s1, s2, s3)
-    b, s0, s1, s2, s3 = _xoshiro(s0, s1, s2, s3)
-    u1 = 1.0 - float(a >> np.uint64(11)) * _U53     # (0, 1]: log stays finite
-    u2 = float(b >> np.uint64(11)) * _U53
-    rad = math.sqrt(-2.0 * math.log(u1))
-    th = _TWO_PI * u2
-    return rad * math.cos(th), rad * math.sin(th), s0, s1, s2, s3
+    """Two independent standard normals and the new stream state."""
+    g0, s0, s1, s2, s3 = _gauss(s0, s1, s2, s3)
+    g1, s0, s1, s2, s3 = _gauss(s0, s1, s2, s3)
+    return g0, g1, s0, s1, s2, s3
 
 
 @njit(cache=True)
@@ -197,7 +263,7 @@ def _uniform(RNG, d):
     RNG[d, 1] = s1
     RNG[d, 2] = s2
     RNG[d, 3] = s3
-    return float(a >> np.uint64(11)) * _U53
+    return _unit(a)
 
 
 @njit(cache=True)
@@ -341,7 +407,7 @@ def _resample(d, split, R, V, W, RNG, CR, CV, IDX, rough):
 
 
 # ------------------------------------------------------------------------- likelihoods
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _phi_diff(a, b):
     """Phi(b) - Phi(a) for a <= b, from the tail that keeps precision."""
     if a > 0.0:
@@ -512,7 +578,7 @@ def _predict(d, dt, q, split, R, V, W, RNG, pri):
     _pack(b0, b1, b2, ref, pri, 6)
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _pack(sw, s1, s2, ref, out, at):
     out[at] = sw
     if sw > 0.0:
@@ -616,6 +682,30 @@ def _init_particles(d, z, sg, near_prior, init_rate, R, V, W, RNG):
     return 1
 
 
+@njit(cache=True)
+def _group(npart, npass):
+    return npart // npass
+
+
+@njit(cache=True)
+def _buffer_rejected(d, t, z, sg, RBT, RBZ, RBV, RBN):
+    """Append a rejected reading (both candidates) to the re-acquisition buffer, as the
+    Kalman kernel does, dropping the oldest when it is full."""
+    m = RBN[d]
+    if m == RB:
+        for j in range(RB - 1):
+            RBT[d, j] = RBT[d, j + 1]
+            for c in range(2):
+                RBZ[d, j, c] = RBZ[d, j + 1, c]
+                RBV[d, j, c] = RBV[d, j + 1, c]
+        m = RB - 1
+    RBT[d, m] = t
+    for c in range(2):
+        RBZ[d, m, c] = z[c]
+        RBV[d, m, c] = sg[c] * sg[c]
+    RBN[d] = m + 1
+
+
 # ------------------------------------------------------------------------- the kernel
 @njit(cache=True)
 def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw, ev_volts,
@@ -650,7 +740,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
     IDX = np.empty(npart, np.int64)
     pri = np.empty(9)
     mass = np.empty(2)
-    ra = np.empty(3)
+    ra = np.empty((2, 3))
     for ii in range(n):
         i = order[ii]
         d = ev_dir[i]
@@ -732,28 +822,25 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                     innov = best_y
                     nis = best_nis
                     if not suspect:
-                        m = RBN[d]
-                        if m == RB:
-                            for j in range(RB - 1):
-                                RBT[d, j] = RBT[d, j + 1]
-                                RBZ[d, j] = RBZ[d, j + 1]
-                                RBV[d, j] = RBV[d, j + 1]
-                            m = RB - 1
-                        c0 = 0 if not math.isnan(z[0]) else 1
-                        RBT[d, m] = t
-                        RBZ[d, m] = z[c0]
-                        RBV[d, m] = sg[c0] * sg[c0]
-                        RBN[d] = m + 1
-                        if K._reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra):
-                            _fill(d, 0, npart, ra[0], math.sqrt(ra[2] + sg[c0] * sg[c0]),
-                                  ra[1], init_rate, 1.0 / npart, R, V, W, RNG)
+                        _buffer_rejected(d, t, z, sg, RBT, RBZ, RBV, RBN)
+                        npass = K._reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra)
+                        if npass > 0:
+                            # one equal group of particles per consistent story, with the
+                            # Kalman path's spread (line-fit variance times the count)
+                            for k in range(npass):
+                                k0 = (k * _group(npart, npass))
+                                k1 = npart if k == npass - 1 else k0 + _group(npart, npass)
+                                _fill(d, k0, k1, ra[k, 0], math.sqrt(ra[k, 2] * reacq_n),
+                                      ra[k, 1], init_rate, 1.0 / npart, R, V, W, RNG)
                             RBN[d] = 0
                             code = REACQUIRED
-                            branch = c0
-                            bprob = 1.0
+                            branch = 0
+                            bprob = 1.0 / npass
                             _summary(d, split_s, split_d, R, V, W, MOM, mass)
                             _modes(d, mass[1], has_split, amb, NH, PMAJ)
                 else:
+                    # an accepted reading says the track is not lost
+                    RBN[d] = 0
                     ess = _ess(WN)
                     _commit(d, W, WN, tot)
                     _summary(d, split_s, split_d, R, V, W, MOM, mass)
@@ -823,16 +910,18 @@ def new_state(n_dir: int, n_sensor: int, n_particles: int, seed: int = 0) -> dic
     ``MOM``: posterior range, rate, P00, P01, P11; ``PMAJ``: ``p_major``; ``RNG``: the
     random streams; the rest as in `fusion.estimators._kernels.new_state`.
     """
-    return {
+    st = {
         "R": np.zeros((n_dir, n_particles)), "V": np.zeros((n_dir, n_particles)),
         "W": np.full((n_dir, n_particles), 1.0 / n_particles),
         "NH": np.zeros(n_dir, np.int64), "T": np.full(n_dir, -np.inf),
         "MOM": np.full((n_dir, 5), np.nan), "PMAJ": np.full(n_dir, np.nan),
         "RNG": _seed_streams(seed, n_dir),
-        "RBT": np.zeros((n_dir, RB)), "RBZ": np.zeros((n_dir, RB)), "RBV": np.zeros((n_dir, RB)),
-        "RBN": np.zeros(n_dir, np.int64),
-        "LAST_RAW": np.full(n_sensor, np.nan), "LAST_NEW_T": np.full(n_sensor, -np.inf),
     }
+    # The screening and re-acquisition buffers are the Kalman kernel's, shapes and all.
+    kal = K.new_state(n_dir, n_sensor, 1)
+    for key in ("RBT", "RBZ", "RBV", "RBN", "LAST_RAW", "LAST_NEW_T"):
+        st[key] = kal[key]
+    return st
 
 
 def _params(est, roughening) -> np.ndarray:
