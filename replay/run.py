@@ -458,7 +458,8 @@ def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
             continue
         st = sstats[name]
         st.counts += np.bincount(code[m], minlength=len(D.NAMES)).astype(np.int64)
-        am = m & acc & np.isfinite(b.nis)
+        # a re-acquiring reading's NIS is against the track it overturned: not a sample
+        am = m & acc & np.isfinite(b.nis) & (code != D.REACQUIRED)
         st.nis_sum += float(b.nis[am].sum())
         st.nis_n += int(am.sum())
         for bit, fname in D.FLAG_NAMES.items():
@@ -471,7 +472,7 @@ def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
             continue
         ds = dstats[d]
         am = m & acc
-        fin = am & np.isfinite(b.nis)
+        fin = am & np.isfinite(b.nis) & (code != D.REACQUIRED)
         ds.nis_sum += float(b.nis[fin].sum())
         ds.nis_n += int(fin.sum())
         ds.loglik += float(np.nansum(b.loglik[am]))

@@ -388,6 +388,7 @@ class IrSim:
     hold_phase_s: float = 0.0
     volts_sigma: float | None = None
     weak_exponent: float = 1.0
+    gain_bias: float = 0.1
     adc_noise_counts: float = 0.0
     floor_volts: float | None = None
     see_max_m: float | None = None
@@ -791,6 +792,7 @@ def _ir_sim(ctx, st, p, sensor):
         hold_phase_s=ctx.num(st, "hold_phase_s", p, 0.0, lo=0.0),
         volts_sigma=ctx.num(st, "volts_sigma", p, None, lo=0.0),
         weak_exponent=ctx.num(st, "weak_exponent", p, 1.0, lo=0.0, hi=4.0),
+        gain_bias=ctx.num(st, "gain_bias", p, 0.1, lo=0.0, hi=1.0),
         adc_noise_counts=ctx.num(st, "adc_noise_counts", p, 0.0, lo=0.0),
         floor_volts=ctx.num(st, "floor_volts", p, None, lo=0.0),
         see_max_m=ctx.num(st, "see_max_m", p, None, lo=0.0, lo_open=True))

@@ -8,8 +8,10 @@ the whole story):
 IR triangulation rangers
     The unit measures every ``hold_s`` (its own cycle) and holds its output in between.
     Each measurement is the unit's curve at the true sensor range (both sides of the
-    peak, so a target nearer than the peak folds back), times the surface gain, plus
-    output noise that grows as the return weakens (``sigma / gain**weak_exponent``).
+    peak, so a target nearer than the peak folds back), shifted by ``gain_bias`` times
+    the strength a weak return loses (the unit reads the spot's position, so reflectivity
+    biases it only a little), plus output noise that grows as the return weakens
+    (``sigma / gain**weak_exponent``).
     Beyond the unit's reach (``see_max_m`` times the square root of the gain: the
     return power falls as gain over range squared) the output drops to a noisy floor.
     The host samples at its own rate and sees the held value through its ADC, so held
@@ -208,7 +210,10 @@ def _simulate_ir(world: _World, name: str, sensor, sim, seed):
     present = r <= reach
     noise = rng.standard_normal(m)
     floor_noise = rng.standard_normal(m)
-    v_target = g * curve.volts(r) + sigma0 / g ** sim.weak_exponent * noise
+    # A triangulation unit reads the spot's position, not its brightness: a weak return
+    # is mostly noisier, and only slightly biased (``gain_bias`` of the lost strength).
+    v_target = ((1.0 - sim.gain_bias * (1.0 - g)) * curve.volts(r)
+                + sigma0 / g ** sim.weak_exponent * noise)
     floor = (0.5 * float(curve.volts(curve.max_range_m)) if sim.floor_volts is None
              else sim.floor_volts)
     lost = np.zeros(m, bool)

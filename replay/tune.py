@@ -226,7 +226,7 @@ class _Problem:
             acc = b.code < D.FIRST_REJECT
             gated = (b.code == D.GATED) | (b.code == D.CROSSTALK)
             total += float(np.nansum(b.loglik[acc | gated]))
-            fin = acc & np.isfinite(b.nis)
+            fin = acc & np.isfinite(b.nis) & (b.code != D.REACQUIRED)
             nis_sum += float(b.nis[fin].sum())
             nis_n += int(fin.sum())
             batches.append(b)

@@ -34,6 +34,7 @@ P_Q, P_GATE, P_K, P_PRUNE, P_NEAR_PRIOR, P_AMB, P_OUTLIER, P_REACQ_N, P_REACQ_W,
     P_MAX_LAG, P_INIT_RATE, P_MERGE = range(12)
 N_PARAMS = 12
 RB = 16  # re-acquisition buffer length per direction
+SUSPECT_OUTLIER_FACTOR = 100.0
 MAXC = 8
 LOG_2PI = math.log(2.0 * math.pi)
 
@@ -272,6 +273,9 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     LAST_RAW[s] = raw
                     LAST_NEW_T[s] = t
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
+        # Another unit pinged while this one listened: crosstalk is a far likelier
+        # explanation of a reading off the track than it is for an ordinary reading.
+        o_dens = outl * SUSPECT_OUTLIER_FACTOR if suspect else outl
         if code == ACCEPTED:
             z = ev_z[i]
             sg = ev_s[i]
@@ -331,7 +335,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     innov = best_y
                     nis = best_nis
                     # predictive density of a reading outside every gate: the outlier term
-                    ll = math.log(outl)
+                    ll = math.log(o_dens)
                     code = CROSSTALK if suspect else GATED
                     if not suspect:
                         m = RBN[d]
@@ -373,7 +377,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         for a in range(2):
                             for b in range(2):
                                 CP[nchild, a, b] = P[d, k, a, b]
-                        CW[nchild] = W[d, k] * outl
+                        CW[nchild] = W[d, k] * o_dens
                         CB[nchild] = -1
                         tot += CW[nchild]
                         nchild += 1

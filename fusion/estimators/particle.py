@@ -114,7 +114,7 @@ IR_OUTLIER_WEIGHT = 0.02
 #: Roughening constant ``K`` of Gordon et al. (1993).
 ROUGHENING = 0.2
 #: Points of the dense curve table each IR ranger's likelihood interpolates.
-GRID_POINTS = 2048
+GRID_POINTS = 4096
 
 # Decision codes and flags: the Kalman kernel's copies of fusion.decisions.
 ACCEPTED, AMBIGUOUS, REACQUIRED = K.ACCEPTED, K.AMBIGUOUS, K.REACQUIRED
@@ -338,12 +338,21 @@ def systematic_resample(weights, u0: float) -> np.ndarray:
 
 @njit(cache=True)
 def _ess(w):
+    # Scaled by the largest weight: unnormalised weights times small likelihoods can be
+    # so small that their squares underflow.
+    m = 0.0
+    for k in range(w.shape[0]):
+        m = max(m, w[k])
+    if not m > 0.0:
+        return 0.0
+    inv = 1.0 / m
     s = 0.0
     s2 = 0.0
     for k in range(w.shape[0]):
-        s += w[k]
-        s2 += w[k] * w[k]
-    return s * s / s2 if s2 > 0 else 0.0
+        x = w[k] * inv
+        s += x
+        s2 += x * x
+    return s * s / s2
 
 
 def effective_sample_size(weights) -> float:
