@@ -208,13 +208,13 @@ class ReplayResult:
                         (("smoothed", st.err_smooth.table()),) if self.smoothed else ()):
                     L.append(f"  against truth ({label}):")
                     L.append(f"    {'zone':<8}{'n':>9}{'RMSE mm':>10}{'bias mm':>10}"
-                             f"{'worst mm':>10}{'NEES':>8}{'2σ cover':>10}")
+                             f"{'worst mm':>10}{'NEES':>10}{'2σ cover':>10}")
                     for z, row in tab.items():
                         if row is None:
                             continue
                         L.append(f"    {z:<8}{row['n']:>9}{1e3 * row['rmse_m']:>10.1f}"
                                  f"{1e3 * row['bias_m']:>10.1f}{1e3 * row['worst_m']:>10.1f}"
-                                 f"{row['nees']:>8.2f}{100 * row['cover2']:>9.1f}%")
+                                 f"{row['nees']:>10.3g}{100 * row['cover2']:>9.1f}%")
         rej = self.rejections()
         if rej:
             L.append("")

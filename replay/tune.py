@@ -68,14 +68,15 @@ class TuneResult:
     nis_before: tuple             # (mean, n, (lo, hi))
     nis_after: tuple
     rig: Rig
-    history: list = field(default_factory=list)
+    history: list = field(default_factory=list)   # improvements: iteration, loglik, params
     seconds: float = 0.0
+    n_evals: int = 0
     n_readings: int = 0
     message: str = ""
 
     def summary(self) -> str:
         L = [f"tuning by {self.objective} over {self.n_readings} readings in "
-             f"{self.seconds:.1f} s ({len(self.history)} likelihood evaluations): {self.message}",
+             f"{self.seconds:.1f} s ({self.n_evals} likelihood evaluations): {self.message}",
              "", f"  {'parameter':<34}{'before':>12}{'tuned':>12}{'95% interval':>26}"]
         for p0, p in zip(self.initial, self.params):
             lo, hi = self.ci95.get(p.name, (math.nan, math.nan))
@@ -308,7 +309,7 @@ def _hessian(f, x, h=0.05):
     return H
 
 
-def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_evals=200,
+def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_evals=600,
          intervals=True) -> TuneResult:
     """Tune a rig's noise parameters on one or more logs.
 
@@ -371,13 +372,18 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         return v
 
     cache = {}
+    best = [ll0]
+    n_evals = [0]
 
     def nll(x):
         key = tuple(np.round(x, 10))
         if key not in cache:
             ll, _, _ = prob.run(to_values(x))
             cache[key] = -ll
-            history.append({"iteration": len(history), "loglik": ll, "params": to_values(x)})
+            n_evals[0] += 1
+            if ll > best[0]:  # the convergence history: each improvement of the optimum
+                best[0] = ll
+                history.append({"iteration": n_evals[0], "loglik": ll, "params": to_values(x)})
         return cache[key]
 
     x0 = np.array([p.value if is_lin else math.log(max(p.value, p.lower))
@@ -390,7 +396,9 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         res = optimize.minimize(nll, x0, method="Powell", bounds=bounds,
                                 options={"maxfev": max_evals, "xtol": 1e-3, "ftol": 1e-7})
         x = res.x
-        message = str(res.message)
+        message = ("converged" if res.success else
+                   f"stopped at the cap of {max_evals} evaluations (raise --max-evals)"
+                   if res.nfev >= max_evals else str(res.message))
     values = to_values(x)
     ci = {}
     if intervals and len(free):
@@ -410,7 +418,8 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     return TuneResult(objective=objective, params=tuned, initial=allp, ci95=ci,
                       loglik_before=ll0, loglik_after=ll1, nis_before=nis0, nis_after=nis1,
                       rig=apply(rig, tuned), history=history,
-                      seconds=time.perf_counter() - t0, n_readings=prob.n, message=message)
+                      seconds=time.perf_counter() - t0, n_readings=prob.n, message=message,
+                      n_evals=n_evals[0])
 
 
 # --- command line ---------------------------------------------------------------------------
@@ -430,7 +439,8 @@ def register(sub):
     p.add_argument("--param", action="append", metavar="NAME",
                    help="tune only this parameter (repeatable), e.g. estimator.accel_psd")
     p.add_argument("--latency", action="store_true", help="also tune sensor latencies")
-    p.add_argument("--max-evals", type=int, default=200)
+    p.add_argument("--max-evals", type=int, default=600,
+                   help="cap on likelihood evaluations (default 600)")
     p.add_argument("--no-intervals", action="store_true", help="skip the curvature intervals")
     p.add_argument("--plot", metavar="FIG.png", help="draw the tuner's convergence")
     p.set_defaults(func=_main)
