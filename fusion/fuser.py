@@ -15,6 +15,7 @@ from . import decisions as D
 from .errors import InputError
 from .estimators import _kernels as K
 from .measurements import Measurements
+from .noise import echo_mixture
 from .rig import Rig
 from .screening import air_at, classify_crosstalk
 from .sensors.air import speed_of_sound
@@ -163,8 +164,11 @@ class Fuser:
                               np.int64)
         self._hold = np.array([getattr(s, "hold_s", 0.0) for s in sens])
         self._blank = np.array([getattr(s, "min_range_m", 0.0) + s.offset_m for s in sens])
-        self._p_blank_drop = np.array([getattr(s, "p_blank_dropout", 0.9) for s in sens])
-        self._p_drop = np.array([getattr(s, "p_dropout", 0.05) for s in sens])
+        # Dropout evidence from the same beam mixture the particle estimator uses: "no
+        # echo" is likely inside the blanking zone, and has the max-range weight outside.
+        mix = [echo_mixture(s) if s.kind == "echo" else None for s in sens]
+        self._p_blank_drop = np.array([m.p_blank_dropout if m else 0.0 for m in mix])
+        self._p_drop = np.array([m.w_max if m else 0.0 for m in mix])
         c_fast, c_slow = speed_of_sound(60.0), speed_of_sound(-40.0)
         self._tau_min = np.array([2 * getattr(s, "min_range_m", 0.0) / c_fast for s in sens])
         self._tau_max = np.array([2 * getattr(s, "max_range_m", 0.0) / c_slow for s in sens])

@@ -606,3 +606,13 @@ class MixtureFit:
             lines.append(f"  blanking below {m.blank_range_m:.6g} m: dropout probability "
                          f"{m.p_blank_dropout:.4f}")
         return "\n".join(lines)
+
+
+def echo_mixture(sensor) -> BeamMixture:
+    """The beam mixture an echo ranger gets unless one is given: `BeamMixture`'s default
+    weights, in the sensor's own frame, to its maximum range, blanking below its minimum;
+    the hit sigma (used for dropouts only: readings bring their own) is the sensor's noise
+    at maximum range."""
+    sigma = math.hypot(sensor.sigma_m, sensor.sigma_frac * sensor.max_range_m)
+    return BeamMixture(z_max_m=sensor.max_range_m, blank_range_m=sensor.min_range_m,
+                       sigma_hit_m=max(sigma, 1e-4), max_width_m=min(0.01, sensor.max_range_m))

@@ -15,7 +15,8 @@ State
 IR triangulation readings
     Gaussian in *volts* around the curve's voltage at the particle's range (linear
     interpolation of `TriangulationCurve.grid`, mount offset removed), with the unit's
-    total volts sigma, mixed with a small uniform outlier component over the output
+    total volts sigma and, as in its decoder, the reflectivity term ``gain_sigma`` times
+    the reading's voltage, mixed with a small uniform outlier component over the output
     span. No inversion and no linearisation: a voltage below the peak fits particles on
     both sides of the peak equally well, so both branches of the near-zone fold-back
     keep their weight until other evidence (an echo reading, a dropout, motion) tells
@@ -23,7 +24,10 @@ IR triangulation readings
 Echo readings
     The beam mixture of `fusion.noise.BeamMixture` (Thrun, Burgard & Fox 2005, eq. 6.12,
     with the blanking extension) around the particle's range, its hit sigma taken from
-    the reading's decoded sigma. A dropout counts as a reading at the maximum range:
+    the reading's decoded sigma. For a crosstalk suspect (another unit pinged while
+    this one listened) the random part, which is the mixture's account of crosstalk
+    (Thrun et al. 2005, §6.3.1), is weighted up by the Kalman path's
+    ``SUSPECT_OUTLIER_FACTOR``. A dropout counts as a reading at the maximum range:
     likely for particles inside the blanking zone (``min_range_m + offset_m``), and also
     for particles anywhere through the mixture's ``w_max`` part.
 Resampling
@@ -33,11 +37,12 @@ Resampling
     particle is jittered by a zero-mean Gaussian with standard deviation
     ``K * E * N^(-1/d)`` per state component, ``E`` that component's spread (max - min)
     among the resampled particles, ``d = 2`` and ``K = roughening`` (default 0.2, as
-    suggested there). ``E`` is taken on each side of the direction's peak separately:
-    over the whole cloud it would be the gap between the two near-zone branches, and the
-    jitter would smear out the narrow near branch. Without it, readings that arrive with no time between them (no
-    process noise to spread copies) would leave identical copies and the cloud would
-    collapse; with 2000 particles it inflates the variance by well under 1 % per resample.
+    suggested there). Without roughening, readings that arrive with no time between them
+    (no process noise to spread the copies) would leave identical copies and the cloud
+    would collapse; with 2000 particles (``E`` about 7 sigma) it inflates the variance by
+    about 0.1 % per resample. ``E`` is taken on each side of the direction's peak
+    separately: over the whole cloud it would be the gap between the two near-zone
+    branches, and the jitter would smear out the narrow near branch.
 
 Outputs and decisions
 ---------------------
@@ -103,11 +108,12 @@ from numba import njit
 
 from ..errors import InputError
 from ..fuser import Estimate, Fuser
-from ..noise import MIN_SHORT_RANGE_M, BeamMixture
+from ..noise import MIN_SHORT_RANGE_M, BeamMixture, echo_mixture as default_mixture
 from . import _kernels as K
 
 __all__ = ["ParticleFuser", "particle_run", "new_state", "systematic_resample",
-           "effective_sample_size", "IR_OUTLIER_WEIGHT", "ROUGHENING", "GRID_POINTS"]
+           "effective_sample_size", "default_mixture", "IR_OUTLIER_WEIGHT", "ROUGHENING",
+           "GRID_POINTS"]
 
 #: Weight of the uniform outlier component of the IR voltage likelihood.
 IR_OUTLIER_WEIGHT = 0.02
@@ -130,11 +136,10 @@ N_PARAMS = 10
 
 # Columns of the per-sensor model table (see `ParticleFuser._sensor_table`).
 S_HOLD, S_OFFSET, S_SPLIT, S_VSIG, S_IR_OUT, S_VSPAN, S_DR, S_W_HIT, S_W_SHORT, S_W_MAX, \
-    S_W_RAND, S_LAMBDA, S_ZMAX, S_WIDTH, S_BLANK, S_P_BLANK, S_DROP_SIGMA = range(17)
-N_SENS_COLS = 17
+    S_W_RAND, S_LAMBDA, S_ZMAX, S_WIDTH, S_BLANK, S_P_BLANK, S_DROP_SIGMA, S_GAIN = range(18)
+N_SENS_COLS = 18
 
 _U53 = 1.0 / 9007199254740992.0  # 2**-53: 53 random bits to a double in [0, 1)
-_TWO_PI = 2.0 * math.pi
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _SQRT1_2 = math.sqrt(0.5)
 _MASK64 = (1 << 64) - 1
@@ -430,10 +435,10 @@ def _phi_diff(a, b):
 def _beam(z, r, inv_sig, w_hit, w_short, w_max, w_rand, lam, zmax, blank, p_blank,
           short_num, box, rand):
     """BeamMixture density of sensor-frame reading ``z`` (clipped to [0, zmax]) at
-    sensor-frame range ``r``, split into its hit part and the rest (Thrun et al. 2005,
-    eq. 6.12, with `fusion.noise.BeamMixture`'s blanking). ``short_num`` is
-    ``lam exp(-lam z)``, ``box`` the max-component density at ``z`` (0 outside the box),
-    ``rand`` ``1 / zmax``."""
+    sensor-frame range ``r``, as its hit part, its short and max parts, and its random
+    part (Thrun et al. 2005, eq. 6.12, with `fusion.noise.BeamMixture`'s blanking).
+    ``short_num`` is ``lam exp(-lam z)``, ``box`` the max-component density at ``z`` (0
+    outside the box), ``rand`` ``1 / zmax``."""
     u = (z - r) * inv_sig
     hit = math.exp(-0.5 * u * u) * inv_sig * _INV_SQRT_2PI
     a = -r * inv_sig
@@ -445,8 +450,8 @@ def _beam(z, r, inv_sig, w_hit, w_short, w_max, w_rand, lam, zmax, blank, p_blan
     short = short_num / -math.expm1(-lam * rs) if z <= rs else 0.0
     pb = p_blank if r < blank else 0.0
     keep = 1.0 - pb
-    return keep * w_hit * hit, keep * (w_short * short + w_max * box + w_rand * rand) \
-        + pb * box
+    return keep * w_hit * hit, keep * (w_short * short + w_max * box) + pb * box, \
+        keep * w_rand * rand
 
 
 @njit(cache=True)
@@ -457,15 +462,16 @@ def _beam_lik(z, r, sigma, mix, out):
     lam = mix[S_LAMBDA]
     box = 1.0 / mix[S_WIDTH] if zc >= zmax - mix[S_WIDTH] else 0.0
     for k in range(r.shape[0]):
-        h, o = _beam(zc, r[k], 1.0 / sigma, mix[S_W_HIT], mix[S_W_SHORT], mix[S_W_MAX],
-                     mix[S_W_RAND], lam, zmax, mix[S_BLANK], mix[S_P_BLANK],
-                     lam * math.exp(-lam * zc), box, 1.0 / zmax)
-        out[k] = h + o
+        h, o, u = _beam(zc, r[k], 1.0 / sigma, mix[S_W_HIT], mix[S_W_SHORT], mix[S_W_MAX],
+                        mix[S_W_RAND], lam, zmax, mix[S_BLANK], mix[S_P_BLANK],
+                        lam * math.exp(-lam * zc), box, 1.0 / zmax)
+        out[k] = h + o + u
 
 
 @njit(cache=True)
-def _lik_echo(d, z, sigma, row, R, W, WN):
-    """Weighted likelihoods ``WN = W p(z | particle)``; returns (sum hit part, sum rest)."""
+def _lik_echo(d, z, sigma, row, ofac, R, W, WN):
+    """Weighted likelihoods ``WN = W p(z | particle)``, the random part scaled by
+    ``ofac``; returns (sum of the hit part, sum of the rest)."""
     zmax = row[S_ZMAX]
     off = row[S_OFFSET]
     lam = row[S_LAMBDA]
@@ -484,8 +490,9 @@ def _lik_echo(d, z, sigma, row, R, W, WN):
     sh = 0.0
     so = 0.0
     for k in range(R.shape[1]):
-        h, o = _beam(zc, R[d, k] - off, inv_sig, w_hit, w_short, w_max, w_rand, lam, zmax,
-                     blank, p_blank, short_num, box, rand)
+        h, o, u = _beam(zc, R[d, k] - off, inv_sig, w_hit, w_short, w_max, w_rand, lam, zmax,
+                        blank, p_blank, short_num, box, rand)
+        o += ofac * u
         w = W[d, k]
         sh += w * h
         so += w * o
@@ -494,12 +501,14 @@ def _lik_echo(d, z, sigma, row, R, W, WN):
 
 
 @njit(cache=True)
-def _lik_ir(d, volts, infl, row, grid, R, W, WN):
-    """Weighted likelihoods of an IR voltage; returns (sum Gaussian part, sum outlier part)."""
-    sig = row[S_VSIG] * math.sqrt(infl)
+def _lik_ir(d, volts, infl, row, grid, ofac, R, W, WN):
+    """Weighted likelihoods of an IR voltage, the outlier part scaled by ``ofac``; returns
+    (sum of the Gaussian part, sum of the outlier part)."""
+    # the unit's noise and the reflectivity term of the decoder, at the reading's voltage
+    sig = math.hypot(row[S_VSIG], row[S_GAIN] * volts) * math.sqrt(infl)
     eps = row[S_IR_OUT]
     a = (1.0 - eps) * _INV_SQRT_2PI / sig
-    b = eps / row[S_VSPAN]
+    b = ofac * eps / row[S_VSPAN]
     h2 = 0.5 / (sig * sig)
     inv_dr = 1.0 / row[S_DR]
     off = row[S_OFFSET]
@@ -717,19 +726,19 @@ def _buffer_rejected(d, t, z, sg, RBT, RBZ, RBV, RBN):
 
 # ------------------------------------------------------------------------- the kernel
 @njit(cache=True)
-def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw, ev_volts,
-                 sens_kind, sens, grids, dir_split, par,
+def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
+                 ev_volts, sens_kind, sens, grids, dir_split, par,
                  R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBN, LAST_RAW, LAST_NEW_T,
                  o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                  o_nh, o_tt):
     """Run the particle estimator over events in the order `order`, in place.
 
     The arguments follow `fusion.estimators._kernels.kalman_run`: events are read at
-    ``order[i]`` and outputs written at the same index. Added: ``ev_volts`` (the decoded voltage of IR readings, NaN otherwise). ``sens`` is
-    the per-sensor model table (columns ``S_*``), ``grids`` the IR curves' voltages on an
-    even range grid from 0 (row per sensor), ``dir_split`` each direction's peak range
-    (NaN: no IR ranger). The state arrays (see `new_state`) are updated in place so a run
-    continues chunk after chunk.
+    ``order[i]`` and outputs written at the same index. Added: ``ev_volts``, the decoded
+    voltage of IR readings (NaN otherwise); ``sens``, the per-sensor model table (columns
+    ``S_*``); ``grids``, the IR curves' voltages on an even range grid from 0 (a row per
+    sensor); ``dir_split``, each direction's peak range (NaN: no IR ranger). The state
+    arrays (see `new_state`) are updated in place, so a run continues chunk after chunk.
     """
     n = order.shape[0]
     npart = R.shape[1]
@@ -784,6 +793,9 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                     LAST_RAW[s] = raw
                     LAST_NEW_T[s] = t
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
+        # As in the Kalman path: when another unit pinged while this one listened,
+        # crosstalk is a far likelier explanation of a reading off the track.
+        ofac = K.SUSPECT_OUTLIER_FACTOR if suspect else 1.0
         if code == ACCEPTED:
             z = ev_z[i]
             sg = ev_s[i]
@@ -820,9 +832,9 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                 # The predictive density is wanted for gated readings too (the tuner's
                 # likelihood); a reading the outlier part explains better is gated as well.
                 if is_ir:
-                    ps, po = _lik_ir(d, ev_volts[i], infl, row, grids[s], R, W, WN)
+                    ps, po = _lik_ir(d, ev_volts[i], infl, row, grids[s], ofac, R, W, WN)
                 else:
-                    ps, po = _lik_echo(d, z[0], sg[0] * math.sqrt(infl), row, R, W, WN)
+                    ps, po = _lik_echo(d, z[0], sg[0] * math.sqrt(infl), row, ofac, R, W, WN)
                 tot = ps + po
                 ll = math.log(tot) if tot > 0.0 else _LOG_TINY
                 gated = not (best_nis <= gate and ps > po)
@@ -883,7 +895,8 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
             tt = t if t > T[d] else T[d]
             _predict(d, tt - T[d], q, split_s, R, V, W, RNG, pri)
             T[d] = tt
-            ps, po = _lik_echo(d, row[S_ZMAX] + row[S_OFFSET], row[S_DROP_SIGMA], row, R, W, WN)
+            ps, po = _lik_echo(d, row[S_ZMAX] + row[S_OFFSET], row[S_DROP_SIGMA], row, 1.0,
+                               R, W, WN)
             tot = ps + po
             if tot > 0.0:
                 ess = _ess(WN)
@@ -949,16 +962,6 @@ def _params(est, roughening) -> np.ndarray:
     return p
 
 
-def default_mixture(sensor) -> BeamMixture:
-    """The beam mixture an echo ranger gets unless one is given: `BeamMixture`'s default
-    weights, in the sensor's own frame, to its maximum range, blanking below its minimum;
-    the hit sigma (used for dropouts only: readings bring their own) is the sensor's noise
-    at maximum range."""
-    sigma = math.hypot(sensor.sigma_m, sensor.sigma_frac * sensor.max_range_m)
-    return BeamMixture(z_max_m=sensor.max_range_m, blank_range_m=sensor.min_range_m,
-                       sigma_hit_m=max(sigma, 1e-4), max_width_m=min(0.01, sensor.max_range_m))
-
-
 class ParticleFuser(Fuser):
     """Fuse a rig's rangers with the particle estimator (``estimator.kind = "particle"``).
 
@@ -983,12 +986,14 @@ class ParticleFuser(Fuser):
 
     Examples
     --------
-    >>> from fusion.rig import Rig, EstimatorConfig                 # doctest: +SKIP
-    >>> rig = Rig.load("rig.toml")                                   # doctest: +SKIP
-    >>> rig = rig.replace(estimator=EstimatorConfig(kind="particle")) # doctest: +SKIP
-    >>> est, dec = ParticleFuser(rig).push("echo_front", 0.0, 0.00291)  # doctest: +SKIP
-    >>> dec.reason, round(est.range_m, 2)                            # doctest: +SKIP
-    ('accepted', 0.5)
+    >>> import dataclasses
+    >>> from fusion.rig import Rig
+    >>> rig = Rig.load("datasets/cold-store-dock.rig.toml")          # doctest: +SKIP
+    >>> est = dataclasses.replace(rig.estimator, kind="particle")    # doctest: +SKIP
+    >>> rig = rig.replace(estimator=est)                              # doctest: +SKIP
+    >>> est, dec = ParticleFuser(rig).push("echo_front", 0.0, 0.0029)  # doctest: +SKIP
+    >>> dec.reason, round(est.range_m, 3), est.n_hypotheses           # doctest: +SKIP
+    ('accepted', 0.501, 1)
     """
 
     estimator_kind = "particle"
@@ -1049,6 +1054,7 @@ class ParticleFuser(Fuser):
                 tab[j, S_HOLD] = s.hold_s
                 tab[j, S_SPLIT] = s.curve.peak_range_m + s.offset_m
                 tab[j, S_VSIG] = sv
+                tab[j, S_GAIN] = getattr(s, "gain_sigma", 0.0)
                 tab[j, S_IR_OUT] = ir_out
                 tab[j, S_VSPAN] = max(s.adc_vref, s.curve.peak_volts + 3.0 * sv)
                 tab[j, S_DR] = r[1] - r[0]
