@@ -126,6 +126,7 @@ def _params(est, tau=None) -> np.ndarray:
     p[K.P_MAX_LAG] = est.max_lag_s
     p[K.P_INIT_RATE] = est.init_rate_sigma_mps
     p[K.P_MERGE] = 1.0
+    p[K.P_VMAX] = est.max_rate_mps
     return p
 
 
@@ -178,8 +179,8 @@ class Fuser:
         self._air_v = np.zeros(0)
         self._rh_t = np.zeros(0)
         self._rh_v = np.zeros(0)
-        self._pings = [(np.zeros(0), np.zeros(0)) if k == K.KIND_ECHO else (None, None)
-                       for k in self._kind]
+        self._pings = [(np.zeros(0), np.zeros(0), np.zeros(0, np.int64)) if k == K.KIND_ECHO
+                       else (None, None, None) for k in self._kind]
 
     # --- environment -------------------------------------------------------------
     def push_air(self, t_s, temp_c) -> None:
@@ -255,12 +256,21 @@ class Fuser:
                                  f"{', '.join(self.sensor_names)}", field="sensor")
             t_s, raw = value[0], value[1]
             ping = value[2] if len(value) > 2 else None
-            t_s = np.atleast_1d(np.asarray(t_s, dtype=float))
-            raw = np.atleast_1d(np.asarray(raw)) if self.rig.sensors[name].output == "serial" \
-                else np.atleast_1d(np.asarray(raw, dtype=float))
-            if raw.shape != t_s.shape:
-                raise InputError(f"t_s has {t_s.size} values but raw has {raw.size}",
-                                 field=f"{name}.raw")
+            try:
+                t_s = np.atleast_1d(np.asarray(t_s, dtype=float))
+                raw = np.atleast_1d(np.asarray(raw)) if self.rig.sensors[name].output == "serial" \
+                    else np.atleast_1d(np.asarray(raw, dtype=float))
+                if ping is not None:
+                    ping = np.atleast_1d(np.asarray(ping, dtype=float))
+            except (TypeError, ValueError):
+                raise InputError("expected 1-D arrays of numbers (t_s, raw[, ping_t_s]); only a "
+                                 "serial unit's raw is text", field=name) from None
+            if t_s.ndim != 1 or raw.shape != t_s.shape:
+                raise InputError(f"t_s has {t_s.size} values but raw has {raw.size}; expected "
+                                 "1-D arrays of one length", field=f"{name}.raw")
+            if ping is not None and ping.shape != t_s.shape:
+                raise InputError(f"ping_t_s has {ping.size} values but t_s has {t_s.size}",
+                                 field=f"{name}.ping_t_s")
             if len(t_s) == 0:
                 continue
             m, temp = self.decode(name, t_s, raw, ping)
@@ -282,20 +292,20 @@ class Fuser:
         tof = np.concatenate([p[4].tof_s for p in parts])
         ping = np.concatenate([np.asarray(p[3], float) if p[3] is not None
                                else np.full(len(p[1]), np.nan) for p in parts])
-        self._screen_crosstalk(sensor, ping, tof, code, flags)
         bad_t = ~np.isfinite(t_meas)
         code[bad_t] = D.INVALID
+        self._screen_crosstalk(sensor, ping, tof, code, flags,
+                               _processing_rank(sensor, t_meas, ping))
         return dict(sensor=sensor, row=row, t_s=t_s, t_meas=t_meas, z=z, sg=sg, code=code,
-                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv)
+                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv, ping=ping)
 
     def run_prepared(self, prep: dict | None) -> StepBatch:
         """Run the estimator over events from `prepare` (arrays are not modified)."""
         if prep is None:
             return _empty_batch()
         sensor, t_meas = prep["sensor"], prep["t_meas"]
+        order = _processing_order(sensor, t_meas, prep["ping"])
         bad_t = ~np.isfinite(t_meas)
-        key = np.where(bad_t, -np.inf, t_meas)  # invalid times: decided first, harmlessly
-        order = np.lexsort((sensor, key))
         n = len(order)
         out = {k: np.empty(n, dt) for k, dt in (("code", np.int8), ("flags", np.int16),
                                                  ("innov", float), ("nis", float),
@@ -325,32 +335,37 @@ class Fuser:
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
-    def _screen_crosstalk(self, sensor, ping, tof, code, flags):
+    def _screen_crosstalk(self, sensor, ping, tof, code, flags, rank):
         is_echo = self._kind[sensor] == K.KIND_ECHO
         has_ping = is_echo & np.isfinite(ping)
         if not has_ping.any():
             return
-        # add this batch's pings to the memory, then classify against all of them
+        # Add this batch's pings to the memory, then classify against them causally: a
+        # reading sees only pings whose readings come before it in processing order, as
+        # it would if they were pushed one by one (earlier batches rank -1).
         new = []
-        for j, (p, tf) in enumerate(self._pings):
+        for j, (p, tf, rk) in enumerate(self._pings):
             if p is None:
-                new.append((None, None))
+                new.append((None, None, None))
                 continue
             sel = has_ping & (sensor == j)
             pj = np.concatenate([p, ping[sel]])
             tj = np.concatenate([tf, tof[sel]])
+            rj = np.concatenate([np.full(len(p), -1, np.int64), rank[sel]])
             o = np.argsort(pj, kind="stable")
-            new.append((pj[o], tj[o]))
+            new.append((pj[o], tj[o], rj[o]))
         rx = np.where(has_ping, ping + tof, np.nan)
         suspect, definite = classify_crosstalk(rx, sensor, new, self._tau_min, self._tau_max,
-                                               _CROSSTALK_TOL_S)
-        # A timing match is symmetric: when unit a hears b's echo, b's own reading matches
-        # a's ping just as well. So a match only marks both suspect; the track decides
-        # (a suspect outside the gate is crosstalk, and suspects never start a track).
-        flags[(suspect | definite) & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
+                                               _CROSSTALK_TOL_S, rank=rank)
+        # Only a timing match is evidence (a ping merely inside the listening window is
+        # not). A match is symmetric — when unit a hears b's echo, b's own reading matches
+        # a's ping just as well — so it marks both suspect and the track decides: a
+        # suspect meets a higher outlier density in the estimator.
+        flags[definite & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
         horizon = np.nanmax(ping[has_ping]) - _PING_MEMORY_S
-        self._pings = [(None, None) if p is None else (p[p >= horizon], tf[p >= horizon])
-                       for p, tf in new]
+        self._pings = [(None, None, None) if p is None else
+                       (p[p >= horizon], tf[p >= horizon], np.full(int((p >= horizon).sum()), -1))
+                       for p, tf, _ in new]
 
     # --- one reading ------------------------------------------------------------
     def push(self, sensor: str, t_s: float, raw, ping_t_s: float = math.nan):
@@ -359,16 +374,16 @@ class Fuser:
         A reading for a sensor the rig does not describe gets the decision
         ``unknown_sensor`` (the estimate is that of the first direction, unchanged).
         """
-        if sensor not in self._index:
-            d = 0
-            est = self.estimate(self.directions[d])
-            return est, Decision(sensor, float(t_s), D.UNKNOWN_SENSOR, math.nan, math.nan,
-                                 -1, math.nan, 0)
-        s = self.rig.sensors[sensor]
         try:
             t = float(t_s)
         except (TypeError, ValueError):
             t = math.nan
+        if not isinstance(sensor, str) or sensor not in self._index:
+            d = 0
+            est = self.estimate(self.directions[d])
+            return est, Decision(str(sensor), t, D.UNKNOWN_SENSOR, math.nan, math.nan,
+                                 -1, math.nan, 0)
+        s = self.rig.sensors[sensor]
         if s.output == "serial":
             rawa = np.array([raw if isinstance(raw, str) else ""], dtype=object).astype(str)
         else:
@@ -405,6 +420,22 @@ class Fuser:
         K._moments(st["W"][d], st["X"][d], st["P"][d], nh, mom)
         return Estimate(float(st["T"][d]), direction, float(mom[0]), float(math.sqrt(mom[2])),
                         float(mom[1]), float(math.sqrt(mom[4])), float(st["W"][d, :nh].max()), nh)
+
+
+def _processing_order(sensor, t_meas, ping):
+    """Time order; invalid times first (decided harmlessly). Ties go to the earlier ping
+    (two echo readings at one instant: the unit that pinged first heard its own sound),
+    then to the sensor index."""
+    key = np.where(np.isfinite(t_meas), t_meas, -np.inf)
+    pkey = np.where(np.isfinite(ping), ping, np.inf)
+    return np.lexsort((sensor, pkey, key))
+
+
+def _processing_rank(sensor, t_meas, ping):
+    order = _processing_order(sensor, t_meas, ping)
+    rank = np.empty(len(order), np.int64)
+    rank[order] = np.arange(len(order))
+    return rank
 
 
 def _append_sorted(t0, v0, t1, v1):

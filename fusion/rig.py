@@ -142,6 +142,8 @@ class EstimatorConfig:
         Mutually consistent rejected readings that restart a track.
     reacquire_window_s : float
         ...that many inside this time window.
+    max_rate_mps : float
+        Fastest range rate the rig expects; re-acquisition refuses a story that needs more.
     max_lag_s : float
         Readings older than the track by less than this are applied at the track time;
         older ones are rejected as late.
@@ -164,6 +166,7 @@ class EstimatorConfig:
     outlier_density: float = 0.02
     reacquire_count: int = 5
     reacquire_window_s: float = 0.5
+    max_rate_mps: float = 4.0
     max_lag_s: float = 0.05
     particles: int = 2000
     resample_below: float = 0.5
@@ -183,7 +186,7 @@ class EstimatorConfig:
         if self.particles < 10:
             return "particles", "particles must be >= 10"
         for k in ("accel_psd", "init_rate_sigma_mps", "reacquire_window_s", "max_lag_s",
-                  "outlier_density"):
+                  "outlier_density", "max_rate_mps"):
             v = getattr(self, k)
             if not (math.isfinite(v) and v > 0) and not (k == "max_lag_s" and v == 0):
                 return k, f"{k} must be a positive number"

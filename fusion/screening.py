@@ -41,7 +41,7 @@ def air_at(t_s, sample_t_s, sample_temp_c, air):
     fallback = np.ones(t_s.shape, bool)
     if st.size:
         j = np.searchsorted(st, t_s, side="right") - 1
-        have = j >= 0
+        have = (j >= 0) & np.isfinite(t_s)  # a reading with no usable time gets the fallback
         jj = np.where(have, j, 0)
         age = t_s - st[jj]
         temp = np.where(have, sv[jj], temp)
@@ -51,7 +51,7 @@ def air_at(t_s, sample_t_s, sample_temp_c, air):
     return temp, sigma, fallback
 
 
-def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s):
+def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=None):
     """Find echo readings that are another unit's ping, by timing.
 
     A reading received at ``rx_t`` by unit ``a`` is *suspect* when another unit ``b``
@@ -65,12 +65,16 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s):
         Reception time (ping time plus time of flight); NaN where unknown.
     sensor : (n,) int array
         Echo sensor index of each reading.
-    pings : list of (p_sorted, tof) pairs
+    pings : list of (p_sorted, tof) or (p_sorted, tof, rank) tuples
         For each echo sensor index, its ping times (sorted) and the echo time it measured
-        for each (NaN for none).
+        for each (NaN for none); with `rank`, also the processing rank of the reading
+        that reported each ping (-1 for readings of earlier batches).
     tau_min_s, tau_max_s : sequences
         Plausible flight-time window per sensor index.
     tol_s : float
+    rank : (n,) int array, optional
+        Processing rank of each reading: a reading is matched only against pings whose
+        readings rank before it (causal screening, as when readings are pushed one by one).
 
     Returns
     -------
@@ -84,9 +88,11 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s):
     for a in np.unique(sensor[known]):
         ia = np.flatnonzero(known & (sensor == a))
         rx = rx_t[ia]
-        for b, (p, tof) in enumerate(pings):
+        for b, entry in enumerate(pings):
+            p, tof = entry[0], entry[1]
             if b == a or p is None or len(p) == 0:
                 continue
+            prank = entry[2] if len(entry) > 2 and rank is not None else None
             lo = np.searchsorted(p, rx - tau_max_s[b], side="left")
             hi = np.searchsorted(p, rx - tau_min_s[b], side="right")
             cnt = hi - lo
@@ -99,6 +105,8 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s):
                 ok = k < hi
                 kk = np.where(ok, k, 0)
                 match = ok & (np.abs(rx - p[kk] - tof[kk]) <= tol_s)
+                if prank is not None:
+                    match &= prank[kk] < rank[ia]
                 definite[ia[match]] = True
     return suspect, definite
 

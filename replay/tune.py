@@ -394,7 +394,7 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     x = x0
     if len(free):
         res = optimize.minimize(nll, x0, method="Powell", bounds=bounds,
-                                options={"maxfev": max_evals, "xtol": 1e-3, "ftol": 1e-7})
+                                options={"maxfev": max_evals, "xtol": 1e-2, "ftol": 1e-6})
         x = res.x
         message = ("converged" if res.success else
                    f"stopped at the cap of {max_evals} evaluations (raise --max-evals)"

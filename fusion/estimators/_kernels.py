@@ -31,10 +31,14 @@ KIND_IR, KIND_ECHO = 0, 1
 
 # Indices into the parameter vector (see fusion.fuser._params).
 P_Q, P_GATE, P_K, P_PRUNE, P_NEAR_PRIOR, P_AMB, P_OUTLIER, P_REACQ_N, P_REACQ_W, \
-    P_MAX_LAG, P_INIT_RATE, P_MERGE = range(12)
-N_PARAMS = 12
+    P_MAX_LAG, P_INIT_RATE, P_MERGE, P_VMAX = range(13)
+N_PARAMS = 13
 RB = 16  # re-acquisition buffer length per direction
 SUSPECT_OUTLIER_FACTOR = 100.0
+# A track whose predicted range sigma would pass this has forgotten its target: it
+# restarts from the next reading instead of predicting across the gap (which, for an
+# absurd time step, overflows to an infinite covariance).
+LOST_SIGMA_M = 1000.0
 MAXC = 8
 LOG_2PI = math.log(2.0 * math.pi)
 
@@ -136,7 +140,7 @@ def _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH):
 
 
 @njit(cache=True)
-def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, out):
+def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
     """Do the rejected readings of the last `window` seconds tell one consistent story?
 
     Each buffered reading has one or two candidates. For each candidate of the newest
@@ -189,7 +193,9 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, out):
             stt += w * dt * dt
             stz += w * dt * (zc[i] - zm)
         slope = stz / stt if stt > 0 else 0.0
-        ok = True
+        # a story that needs the target faster than any the rig expects is not one
+        # (sliding crosstalk between free-running units draws such lines)
+        ok = abs(slope) <= vmax
         for i in range(n):
             pred = zm + slope * (RBT[d, i] - t - tm)
             if abs(zc[i] - pred) > 3.0 * math.sqrt(vc[i]) + 0.01:
@@ -233,6 +239,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
     max_lag = par[P_MAX_LAG]
     init_rate = par[P_INIT_RATE]
     merge_d2 = par[P_MERGE]
+    vmax = par[P_VMAX]
     miss_keep = 100.0 * prune
     CW = np.empty(3 * MAXC)
     CX = np.empty((3 * MAXC, 2))
@@ -276,22 +283,24 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
         # Another unit pinged while this one listened: crosstalk is a far likelier
         # explanation of a reading off the track than it is for an ordinary reading.
         o_dens = outl * SUSPECT_OUTLIER_FACTOR if suspect else outl
+        if code == ACCEPTED and NH[d] > 0 and q * (t - T[d]) ** 3 / 3.0 > LOST_SIGMA_M ** 2:
+            NH[d] = 0
+            RBN[d] = 0
         if code == ACCEPTED:
             z = ev_z[i]
             sg = ev_s[i]
             if NH[d] == 0:
-                if suspect:
-                    code = CROSSTALK
+                # Any reading may start a track; one started on crosstalk is overturned by
+                # the consistent readings that follow (re-acquisition).
+                nc = _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH)
+                T[d] = t
+                if nc == 2:
+                    code = AMBIGUOUS
+                    branch = 0 if near_prior < 0.5 else 1
+                    bprob = max(near_prior, 1.0 - near_prior)
                 else:
-                    nc = _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH)
-                    T[d] = t
-                    if nc == 2:
-                        code = AMBIGUOUS
-                        branch = 0 if near_prior < 0.5 else 1
-                        bprob = max(near_prior, 1.0 - near_prior)
-                    else:
-                        branch = 0 if math.isnan(z[1]) else 1
-                        bprob = 1.0
+                    branch = 0 if math.isnan(z[1]) else 1
+                    bprob = 1.0
             else:
                 tt = t if t > T[d] else T[d]
                 dt = tt - T[d]
@@ -337,35 +346,34 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     # predictive density of a reading outside every gate: the outlier term
                     ll = math.log(o_dens)
                     code = CROSSTALK if suspect else GATED
-                    if not suspect:
-                        m = RBN[d]
-                        if m == RB:
-                            for j in range(RB - 1):
-                                RBT[d, j] = RBT[d, j + 1]
-                                for c in range(2):
-                                    RBZ[d, j, c] = RBZ[d, j + 1, c]
-                                    RBV[d, j, c] = RBV[d, j + 1, c]
-                            m = RB - 1
-                        RBT[d, m] = t
-                        for c in range(2):
-                            RBZ[d, m, c] = z[c]
-                            RBV[d, m, c] = sg[c] * sg[c]
-                        RBN[d] = m + 1
-                        npass = _reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra)
-                        if npass > 0:
-                            NH[d] = npass
-                            for k in range(npass):
-                                W[d, k] = 1.0 / npass
-                                X[d, k, 0] = ra[k, 0]
-                                X[d, k, 1] = ra[k, 1]
-                                P[d, k, 0, 0] = ra[k, 2] * reacq_n
-                                P[d, k, 0, 1] = 0.0
-                                P[d, k, 1, 0] = 0.0
-                                P[d, k, 1, 1] = init_rate * init_rate
-                            RBN[d] = 0
-                            code = REACQUIRED
-                            branch = 0
-                            bprob = 1.0 / npass
+                    m = RBN[d]
+                    if m == RB:
+                        for j in range(RB - 1):
+                            RBT[d, j] = RBT[d, j + 1]
+                            for c in range(2):
+                                RBZ[d, j, c] = RBZ[d, j + 1, c]
+                                RBV[d, j, c] = RBV[d, j + 1, c]
+                        m = RB - 1
+                    RBT[d, m] = t
+                    for c in range(2):
+                        RBZ[d, m, c] = z[c]
+                        RBV[d, m, c] = sg[c] * sg[c]
+                    RBN[d] = m + 1
+                    npass = _reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, vmax, ra)
+                    if npass > 0:
+                        NH[d] = npass
+                        for k in range(npass):
+                            W[d, k] = 1.0 / npass
+                            X[d, k, 0] = ra[k, 0]
+                            X[d, k, 1] = ra[k, 1]
+                            P[d, k, 0, 0] = ra[k, 2] * reacq_n
+                            P[d, k, 0, 1] = 0.0
+                            P[d, k, 1, 0] = 0.0
+                            P[d, k, 1, 1] = init_rate * init_rate
+                        RBN[d] = 0
+                        code = REACQUIRED
+                        branch = 0
+                        bprob = 1.0 / npass
                 else:
                     tot = 0.0
                     for j in range(nchild):
