@@ -41,6 +41,7 @@ from . import metrics as M
 from ._io import atomic_output, refuse_overwrite
 from .logfile import open_log
 from .run import _rig_for, _truth_interp, load_rig
+from fusion.estimators.smoother import rts_smooth
 
 __all__ = ["tune", "TuneResult", "Parameter", "register"]
 
@@ -234,38 +235,110 @@ class _Problem:
         return total, (nis_sum / max(nis_n, 1), nis_n, M.nis_bounds(nis_n)), batches
 
 
-def _fit_sensor_noise_to_truth(problem: _Problem) -> dict:
-    """Each sensor's sigma model fitted to its residuals against truth (trimmed ML)."""
+def _truth_refs(problem):
+    """Reference ranges for every prepared reading from ground truth (no extra variance)."""
+    refs = []
+    for k, prep in enumerate(problem.preps):
+        ref = np.full(len(prep["sensor"]), np.nan)
+        for si, name in enumerate(problem.sensor_names):
+            tr_d = problem.truths[k].get(problem.rig.sensors[name].direction)
+            m = prep["sensor"] == si
+            if tr_d is not None and m.any():
+                ref[m] = _truth_interp(tr_d, prep["t_meas"][m])
+        refs.append((ref, np.zeros_like(ref)))
+    return refs
+
+
+def _smoothed_refs(problem, batches, q):
+    """E-step: smoothed range (and its variance) at every fused reading, and the expected
+    process-noise statistic for the white-acceleration model.
+
+    Returns ``(refs, q_hat)``: per log, reference range and extra variance per prepared
+    reading; and the maximum-likelihood q given the smoothed states (Shumway & Stoffer
+    1982: ``q = sum tr(Q1(dt)^-1 E[w w']) / (2 M)``).
+    """
+    refs = []
+    num, den = 0.0, 0
+    for b in batches:
+        ref = np.full(len(b.code), np.nan)
+        extra = np.zeros(len(b.code))
+        acc = b.code < D.FIRST_REJECT
+        for di in np.unique(b.direction):
+            sel = acc & (b.direction == di)
+            idx = b.order[sel[b.order]]
+            if idx.size < 3:
+                continue
+            t = b.t_state_s[idx]
+            x = b.state[idx, :2]
+            P = np.empty((idx.size, 2, 2))
+            P[:, 0, 0] = b.state[idx, 2]
+            P[:, 0, 1] = P[:, 1, 0] = b.state[idx, 3]
+            P[:, 1, 1] = b.state[idx, 4]
+            xs, Ps = rts_smooth(t, x, P, q)
+            ref[idx] = xs[:, 0]
+            extra[idx] = Ps[:, 0, 0]
+            dt = np.diff(t)
+            ok = dt > 1e-6
+            if not ok.any():
+                continue
+            dt = dt[ok]
+            k0 = np.flatnonzero(ok)
+            F = np.zeros((dt.size, 2, 2))
+            F[:, 0, 0] = F[:, 1, 1] = 1.0
+            F[:, 0, 1] = dt
+            Q1 = np.empty((dt.size, 2, 2))
+            Q1[:, 0, 0] = dt ** 3 / 3
+            Q1[:, 0, 1] = Q1[:, 1, 0] = dt ** 2 / 2
+            Q1[:, 1, 1] = dt
+            Pk = P[k0]
+            Pp = F @ Pk @ np.swapaxes(F, 1, 2) + q * Q1
+            G = Pk @ np.swapaxes(F, 1, 2) @ np.linalg.inv(Pp)
+            w = xs[k0 + 1] - np.einsum("kij,kj->ki", F, xs[k0])
+            C = Ps[k0 + 1] @ np.swapaxes(G, 1, 2)        # Cov(x_{k+1}, x_k | all)
+            Ew = (w[:, :, None] * w[:, None, :] + Ps[k0 + 1]
+                  + F @ Ps[k0] @ np.swapaxes(F, 1, 2)
+                  - C @ np.swapaxes(F, 1, 2) - F @ np.swapaxes(C, 1, 2))
+            num += float(np.einsum("kij,kji->", np.linalg.inv(Q1), Ew))
+            den += 2 * dt.size
+        refs.append((ref, extra))
+    return refs, (num / den if den else q)
+
+
+def _fit_sensor_noise(problem: _Problem, refs) -> dict:
+    """Each sensor's sigma model fitted by maximum likelihood to its residuals against a
+    reference range (truth, or the smoothed track with its variance), trimmed at 4 sigma."""
     out = {}
     for si, name in enumerate(problem.sensor_names):
         s = problem.rig.sensors[name]
-        res, rr, base = [], [], []
+        res, rr, base, ex = [], [], [], []
         for k, prep in enumerate(problem.preps):
-            tr_d = problem.truths[k].get(s.direction)
-            if tr_d is None:
+            ref_all, extra_all = refs[k]
+            m = (prep["sensor"] == si) & (prep["code"] == D.ACCEPTED) & np.isfinite(ref_all)
+            if not m.any():
                 continue
-            m = (prep["sensor"] == si) & (prep["code"] == D.ACCEPTED)
-            tr = _truth_interp(tr_d, prep["t_meas"][m])
+            tr = ref_all[m]
             z = prep["z"][m]
-            # the candidate on the truth's side of the curve
+            # the candidate on the reference's side of the curve
             col = np.where(np.isfinite(z[:, 1]) & (np.abs(z[:, 1] - tr) < np.abs(z[:, 0] - tr)), 1, 0)
             zz = z[np.arange(len(z)), col]
-            ok = np.isfinite(zz) & np.isfinite(tr)
+            ok = np.isfinite(zz)
             res.append((zz - tr)[ok])
             rr.append(prep["raw_m"][m][ok] if s.kind == "echo" else zz[ok])
             base.append(prep["sg"][m][np.arange(len(z)), col][ok])
+            ex.append(extra_all[m][ok])
         if not res:
             continue
         e = np.concatenate(res)
         r = np.concatenate(rr)
         sb = np.concatenate(base)
+        e2 = e * e + np.concatenate(ex)   # E[(z - x)^2]
         if e.size < 20:
             continue
         keep = np.ones(e.size, bool)
         if s.kind == "triangulation":
-            # sigma = f * base: closed form, trimmed at 4 sigma
+            # sigma = f * base: closed form
             for _ in range(5):
-                f = math.sqrt(np.mean((e[keep] / sb[keep]) ** 2))
+                f = math.sqrt(np.mean(e2[keep] / sb[keep] ** 2))
                 keep = np.abs(e) <= 4 * f * sb
             from fusion.sensors.adc import adc_quantisation_sigma_v
             q = adc_quantisation_sigma_v(s.adc_bits, s.adc_vref) if s.output == "counts" else 0.0
@@ -277,7 +350,7 @@ def _fit_sensor_noise_to_truth(problem: _Problem) -> dict:
             for _ in range(4):
                 def nll(t):
                     v = ov[keep] + math.exp(2 * t[0]) + (math.exp(t[1]) * r[keep]) ** 2
-                    return 0.5 * np.sum(np.log(v) + e[keep] ** 2 / v)
+                    return 0.5 * np.sum(np.log(v) + e2[keep] / v)
                 th = optimize.minimize(nll, th, method="Nelder-Mead",
                                        options={"xatol": 1e-4, "fatol": 1e-6}).x
                 v = ov + math.exp(2 * th[0]) + (math.exp(th[1]) * r) ** 2
@@ -285,6 +358,65 @@ def _fit_sensor_noise_to_truth(problem: _Problem) -> dict:
             out[f"sensor.{name}.sigma_m"] = math.exp(th[0])
             out[f"sensor.{name}.sigma_frac"] = math.exp(th[1])
     return out
+
+
+def _em(problem, values, history, max_rounds=8, tol=1e-6):
+    """Expectation-maximisation for the sensor noise, a line search for the process noise.
+
+    Each round: EM passes (E-step = filter + RTS smoother; M-step = maximum likelihood
+    of each sensor's sigma model given the smoothed track and its variance) until they
+    stop gaining, then a bounded line search of the innovations likelihood over log q —
+    EM's own q step converges too slowly here (the classic EM slowness for the process
+    noise). Rounds repeat until the likelihood gains less than `tol` relative.
+
+    Returns ``(values, evaluations, loglik)``.
+
+    References
+    ----------
+    R. H. Shumway, D. S. Stoffer, "An approach to time series smoothing and forecasting
+    using the EM algorithm", J. Time Series Analysis 3(4), 253-264 (1982).
+    """
+    values = dict(values)
+    n_eval = [0]
+    best = [dict(values), -math.inf]
+
+    def run(v):
+        ll, _, batches = problem.run(v)
+        n_eval[0] += 1
+        if ll > best[1]:
+            best[0], best[1] = dict(v), ll
+            history.append({"iteration": n_eval[0], "loglik": ll, "params": dict(v)})
+        return ll, batches
+
+    ll, batches = run(values)
+    qkey = "estimator.accel_psd"
+    for _ in range(max_rounds):
+        ll_round = ll
+        for _ in range(6):  # EM passes on the sensor noise
+            q = values.get(qkey, problem.rig.estimator.accel_psd)
+            refs, _ = _smoothed_refs(problem, batches, q)
+            new = {k: v for k, v in _fit_sensor_noise(problem, refs).items() if k in values}
+            if not new:
+                break
+            trial = dict(values, **new)
+            ll_new, b_new = run(trial)
+            if ll_new <= ll + tol * abs(ll):
+                if ll_new > ll:
+                    values, ll, batches = trial, ll_new, b_new
+                break
+            values, ll, batches = trial, ll_new, b_new
+        if qkey in values:
+            def neg(logq):
+                return -run(dict(values, **{qkey: math.exp(logq)}))[0]
+            lq = math.log(values[qkey])
+            r = optimize.minimize_scalar(neg, bracket=(lq - 1.0, lq), bounds=None,
+                                         options={"xtol": 0.02, "maxiter": 30})
+            if -r.fun > ll:
+                values = dict(values, **{qkey: math.exp(r.x)})
+                ll, batches = run(values)
+        if ll - ll_round <= tol * abs(ll):
+            break
+    return best[0], n_eval[0], best[1]
 
 
 def _hessian(f, x, h=0.05):
@@ -310,7 +442,7 @@ def _hessian(f, x, h=0.05):
 
 
 def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_evals=600,
-         intervals=True) -> TuneResult:
+         intervals=True, em=True) -> TuneResult:
     """Tune a rig's noise parameters on one or more logs.
 
     Parameters
@@ -328,6 +460,9 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         Cap on likelihood evaluations for the optimiser.
     intervals : bool
         Compute 95 % intervals from the likelihood's curvature.
+    em : bool
+        Start the innovations objective with expectation-maximisation passes (filter,
+        smoother, closed-form or small M-steps) before the direct search.
 
     Returns
     -------
@@ -359,9 +494,22 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     history = [{"iteration": 0, "loglik": ll0, "params": dict(values0)}]
     fixed = {}
     if objective == "truth":
-        fixed = _fit_sensor_noise_to_truth(prob)
+        fixed = _fit_sensor_noise(prob, _truth_refs(prob))
         fixed = {k: v for k, v in fixed.items() if k in values0}
+    em_iters = 0
+    if objective == "innovations" and em:
+        # Expectation-maximisation (Shumway & Stoffer 1982) climbs the same likelihood in
+        # a few filter-and-smoother passes; the direct search below then only polishes.
+        values_em, em_iters, ll_em = _em(prob, values0, history)
+        if ll_em > ll0:
+            values0 = {k: (values_em[k] if k in values_em else v) for k, v in values0.items()}
     free = [p for p in allp if p.name not in fixed]
+    if em_iters and not latency:
+        # EM and the line search reached the optimum: the direct search is not needed
+        # (parameters stay free for the curvature intervals).
+        max_evals_direct = 0
+    else:
+        max_evals_direct = max_evals
     lin = [p.name.endswith("latency_s") for p in free]
 
     def to_values(x):
@@ -372,8 +520,8 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         return v
 
     cache = {}
-    best = [ll0]
-    n_evals = [0]
+    best = [max(h["loglik"] for h in history)]
+    n_evals = [em_iters]
 
     def nll(x):
         key = tuple(np.round(x, 10))
@@ -386,13 +534,15 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
                 history.append({"iteration": n_evals[0], "loglik": ll, "params": to_values(x)})
         return cache[key]
 
-    x0 = np.array([p.value if is_lin else math.log(max(p.value, p.lower))
+    x0 = np.array([values0[p.name] if is_lin else math.log(max(values0[p.name], p.lower))
                    for p, is_lin in zip(free, lin)])
     bounds = [(p.lower, p.upper) if is_lin else (math.log(p.lower), math.log(p.upper))
               for p, is_lin in zip(free, lin)]
     message = "nothing to optimise"
     x = x0
-    if len(free):
+    if em_iters and not max_evals_direct:
+        message = f"converged (EM and line search, {em_iters} evaluations)"
+    elif len(free):
         res = optimize.minimize(nll, x0, method="Powell", bounds=bounds,
                                 options={"maxfev": max_evals, "xtol": 1e-2, "ftol": 1e-6})
         x = res.x
@@ -402,15 +552,22 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     values = to_values(x)
     ci = {}
     if intervals and len(free):
+        H = _hessian(nll, x)
+        kind = "marginal"
         try:
-            H = _hessian(nll, x)
-            cov = np.linalg.inv(H)
-            sd = np.sqrt(np.clip(np.diag(cov), 0, np.inf))
-            for p, xi, s, is_lin in zip(free, x, sd, lin):
-                ci[p.name] = (xi - 1.96 * s, xi + 1.96 * s) if is_lin else \
-                    (math.exp(xi - 1.96 * s), math.exp(xi + 1.96 * s))
+            np.linalg.cholesky(H)
+            var = np.diag(np.linalg.inv(H))
         except np.linalg.LinAlgError:
-            message += "; likelihood curvature singular: no intervals"
+            # not a clean maximum in every direction (the likelihood has the kinks of
+            # gating): fall back to intervals with the other parameters held
+            kind = "conditional"
+            var = np.where(np.diag(H) > 0, 1.0 / np.where(np.diag(H) > 0, np.diag(H), 1.0), np.nan)
+        sd = np.sqrt(var)
+        for p, xi, sdi, is_lin in zip(free, x, sd, lin):
+            ci[p.name] = (xi - 1.96 * sdi, xi + 1.96 * sdi) if is_lin else \
+                (math.exp(xi - 1.96 * sdi), math.exp(xi + 1.96 * sdi))
+        if kind == "conditional":
+            message += "; curvature not positive definite: intervals hold the other parameters fixed"
     if fixed and intervals:
         message += "; sensor noise fitted to truth residuals (intervals only for the rest)"
     ll1, nis1, _ = prob.run(values)
