@@ -448,6 +448,7 @@ class LogFile:
         self._f = None
         try:
             self._f = h5py.File(self.path, "r")
+            self._open = {}
         except FileNotFoundError:
             raise InputError("no such file", file=self.path) from None
         except IsADirectoryError:
@@ -477,6 +478,7 @@ class LogFile:
     # --- context manager ---------------------------------------------------------
     def close(self) -> None:
         if self._f is not None:
+            self._open = {}
             self._f.close()
             self._f = None
 
@@ -655,7 +657,11 @@ class LogFile:
     def _read(self, field: str, start: int = 0, stop: int | None = None, text: bool = False):
         if self._f is None:
             raise InputError("the log is closed", file=self.path)
-        ds = self._f[field]
+        # Keep each dataset open: HDF5's chunk cache lives with the open dataset, so
+        # reopening it per read would decompress the same chunk again for every window.
+        ds = self._open.get(field)
+        if ds is None:
+            ds = self._open[field] = self._f[field]
         try:
             if text:
                 return np.asarray(ds.asstr()[start:stop], dtype=object)
@@ -806,6 +812,10 @@ class LogFile:
         k = _window_index(_next_time(cursors), w)
         while cursors:
             end = (k + 1) * w
+            nt = _next_time(cursors)
+            if math.isfinite(nt) and not end > nt:
+                # Past 2**53 windows the float grid is coarser than w: make progress anyway.
+                end = math.nextafter(nt, math.inf)
             # A sensor with more than max_rows readings before `end` cuts the window short,
             # at the time of its first row beyond the limit: pieces stay in time order.
             cut = end
@@ -880,7 +890,8 @@ class _Cursor:
             if not self._lo <= pos < self._lo + self._buf.size:
                 self._load(pos)
             seg = self._buf[pos - self._lo: min(lim - self._lo, self._buf.size)]
-            hits = np.flatnonzero(seg >= end)
+            # +inf rides along like NaN; otherwise it would hold its sensor back forever
+            hits = np.flatnonzero((seg >= end) & np.isfinite(seg))
             if hits.size:
                 return pos + int(hits[0]), True
             pos += seg.size

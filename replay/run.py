@@ -70,7 +70,12 @@ def make_fuser(rig: Rig):
 
 
 class _Appender:
-    """Resizable, chunked, checksummed datasets that grow chunk by chunk."""
+    """Resizable, chunked, checksummed datasets that grow chunk by chunk.
+
+    Rows are buffered and written a whole chunk at a time, so each chunk is compressed
+    once (a partly written chunk evicted from HDF5's cache would be compressed again on
+    every later write); memory holds at most one chunk per column.
+    """
 
     def __init__(self, group, cols):
         self.ds = {}
@@ -80,16 +85,32 @@ class _Appender:
             if units:
                 ds.attrs["units"] = units
             self.ds[name] = ds
-        self.n = 0
+        self.n = 0          # rows written or buffered
+        self._buf = {name: [] for name in self.ds}
+        self._nbuf = 0
 
     def append(self, **cols):
         m = len(next(iter(cols.values())))
         if m == 0:
             return
-        for name, ds in self.ds.items():
-            ds.resize((self.n + m,))
-            ds[self.n:self.n + m] = cols[name]
+        for name in self.ds:
+            self._buf[name].append(np.asarray(cols[name]))
+        self._nbuf += m
         self.n += m
+        if self._nbuf >= _CHUNK:
+            self.flush(whole_chunks=True)
+
+    def flush(self, whole_chunks=False):
+        if not self._nbuf:
+            return
+        start = self.n - self._nbuf
+        data = {name: np.concatenate(parts) for name, parts in self._buf.items()}
+        k = (self._nbuf // _CHUNK) * _CHUNK if whole_chunks else self._nbuf
+        for name, ds in self.ds.items():
+            ds.resize((start + k,))
+            ds[start:start + k] = data[name][:k]
+            self._buf[name] = [data[name][k:]] if k < self._nbuf else []
+        self._nbuf -= k
 
 
 @dataclass
@@ -229,16 +250,27 @@ class ReplayResult:
         return "\n".join(L)
 
 
+def _clean_truth(truth):
+    """Finite, time-ordered truth samples (once per log), or None."""
+    if truth is None:
+        return None
+    tt, rr = (np.asarray(a, float) for a in truth)
+    ok = np.isfinite(tt) & np.isfinite(rr)
+    tt, rr = tt[ok], rr[ok]
+    if tt.size > 1 and np.any(np.diff(tt) < 0):
+        o = np.argsort(tt, kind="stable")
+        tt, rr = tt[o], rr[o]
+    return tt, rr
+
+
 def _truth_interp(truth, t):
+    """Truth range at times `t` (NaN outside the truth's span); `truth` from `_clean_truth`."""
     if truth is None:
         return None
     tt, rr = truth
-    ok = np.isfinite(tt) & np.isfinite(rr)
-    tt, rr = tt[ok], rr[ok]
     if tt.size < 2:
         return np.full(np.shape(t), np.nan)
-    out = np.interp(t, tt, rr, left=np.nan, right=np.nan)
-    return out
+    return np.interp(t, tt, rr, left=np.nan, right=np.nan)
 
 
 def run(log, rig=None, *, out=None, smooth=False, window_s=10.0, progress=False,
@@ -403,7 +435,7 @@ def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
         fuser.push_air(*env["air"])
     if "humidity" in env:
         fuser.push_humidity(*env["humidity"])
-    truths = {d: log.truth(d) for d in dirs}
+    truths = {d: _clean_truth(log.truth(d)) for d in dirs}
     has_truth = any(v is not None for v in truths.values())
     edges = {d: M.zone_edges(rig, d) for d in dirs}
     dec = _Appender(grp.create_group("decisions"), _DECISION_COLS)
@@ -437,6 +469,9 @@ def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
             span = (min(span[0], float(b.t_s[fin].min())), max(span[1], float(b.t_s[fin].max())))
         _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks)
         bar.add(len(b))
+    dec.flush()
+    for tr in tracks.values():
+        tr.flush()
     if smooth:
         for di, d in enumerate(dirs):
             _smooth_track(grp[f"track/{d}"], rig.estimator.accel_psd, truths[d], edges[d],
@@ -444,7 +479,7 @@ def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
     for d in dirs:
         if truths[d] is not None:
             g = grp.create_group(f"truth/{d}")
-            for k, v in zip(("t_s", "range_m"), truths[d]):
+            for k, v in zip(("t_s", "range_m"), log.truth(d)):
                 g.create_dataset(k, data=v, **_FILTERS).attrs["units"] = "s" if k == "t_s" else "m"
     return {"n": dec.n, "sensors": sstats, "dirs": dstats, "has_truth": has_truth, "span": span}
 

@@ -40,7 +40,7 @@ from fusion.rig import Rig
 from . import metrics as M
 from ._io import atomic_output, refuse_overwrite
 from .logfile import open_log
-from .run import _rig_for, _truth_interp, load_rig
+from .run import _clean_truth, _rig_for, _truth_interp, load_rig
 from fusion.estimators.smoother import rts_smooth
 
 __all__ = ["tune", "TuneResult", "Parameter", "register"]
@@ -162,7 +162,7 @@ class _Problem:
                 if prep is None:
                     continue
                 self.preps.append(prep)
-                self.truths.append({d: log.truth(d) for d in rig.directions})
+                self.truths.append({d: _clean_truth(log.truth(d)) for d in rig.directions})
                 self.n += len(prep["sensor"])
         if not self.preps:
             raise InputError("the logs hold no readings to tune on", field="/sensors")
