@@ -306,7 +306,9 @@ def run(log, rig=None, *, out=None, smooth=False, window_s=10.0, progress=False,
     rig_given = load_rig(rig)
     t_start = time.perf_counter()
     with atomic_output(out, inputs=paths) as tmp:
-        with h5py.File(tmp, "w", track_order=True) as f5:
+        # Chunks are written whole (see _Appender), so no chunk cache is needed; the
+        # default one would hold megabytes per column for nothing.
+        with h5py.File(tmp, "w", track_order=True, rdcc_nbytes=0) as f5:
             result = _run_into(f5, paths, rig_given, smooth, window_s, progress)
     result.path = out
     result.seconds = time.perf_counter() - t_start
@@ -527,8 +529,17 @@ def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
                          cov_rv_m2ps=x[:, 3], cov_vv_m2ps2=x[:, 4], p_major=b.p_major[am],
                          n_hypotheses=b.n_hyp[am], flags=tflags.astype(np.int8))
         if truths[d] is not None:
-            tr = _truth_interp(truths[d], b.t_state_s[am])
-            ds.err.add(x[:, 0] - tr, np.sqrt(x[:, 2]), M.zone_of(tr, edges[d]))
+            # Score the estimate a user would have read at every reading of the direction
+            # (predicted to its time), not only at fused ones: a track that is rejecting
+            # everything is still wrong while it does.
+            seen = m & np.isfinite(b.t_meas_s) & np.isfinite(b.state[:, 0])
+            dtp = np.maximum(b.t_meas_s[seen] - b.t_state_s[seen], 0.0)
+            xs = b.state[seen]
+            r_pred = xs[:, 0] + xs[:, 1] * dtp
+            v_pred = (xs[:, 2] + 2 * dtp * xs[:, 3] + dtp ** 2 * xs[:, 4]
+                      + rig.estimator.accel_psd * dtp ** 3 / 3)
+            tr = _truth_interp(truths[d], b.t_meas_s[seen])
+            ds.err.add(r_pred - tr, np.sqrt(v_pred), M.zone_of(tr, edges[d]))
             trm = _truth_interp(truths[d], b.t_meas_s[m])
             # branch correctness: IR readings below the peak (by truth) that were fused
             ir = np.array([rig.sensors[n].kind == "triangulation" for n in names])[b.sensor[m]]

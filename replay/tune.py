@@ -451,7 +451,8 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     rig : Rig or path, optional
         Starting rig (default: the one embedded in the first log).
     objective : {"auto", "innovations", "truth"}
-        "auto" uses "truth" when every log carries ground truth.
+        "auto" is "innovations"; "truth" fits each sensor's noise to its residuals
+        against the logs' ground truth and only the process noise by likelihood.
     params : list of str, optional
         Parameter names to tune (default: process noise and every sensor's noise terms).
     latency : bool
@@ -485,7 +486,9 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     prob = _Problem(paths, rig, allp, latency)
     has_truth = all(any(v is not None for v in tr.values()) for tr in prob.truths)
     if objective == "auto":
-        objective = "truth" if has_truth else "innovations"
+        # The innovations likelihood needs no truth and models every reading the filter
+        # uses; truth residuals are an option for logs whose truth is trusted.
+        objective = "innovations"
     if objective == "truth" and not has_truth:
         raise InputError("objective 'truth' needs ground truth in every log (/truth)",
                          file=paths[0], field="/truth")

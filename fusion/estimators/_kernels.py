@@ -144,9 +144,12 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
     """Do the rejected readings of the last `window` seconds tell one consistent story?
 
     Each buffered reading has one or two candidates. For each candidate of the newest
-    reading (an anchor), every reading contributes its candidate nearest the anchor, and
-    a weighted straight line through them must fit every one within three sigma (plus a
-    centimetre). Returns how many anchors pass; ``out[k]`` = (range now, rate, variance).
+    reading (an anchor), every reading offers its candidate nearest the anchor; those
+    within reach of the anchor (three sigma each, a centimetre, and 0.5 m/s of motion)
+    form the story, which needs at least `nmin` readings, a weighted straight line that
+    fits each within three sigma plus a centimetre, and a rate no faster than `vmax`.
+    Readings outside the story (crosstalk, clutter) do not spoil it. Returns how many
+    anchors pass; ``out[k]`` = (range now, rate, variance of the range).
     """
     n = RBN[d]
     j = 0
@@ -164,40 +167,51 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
     npass = 0
     zc = np.empty(RB)
     vc = np.empty(RB)
+    tc = np.empty(RB)
     for anchor in range(2):
         a = RBZ[d, n - 1, anchor]
         if math.isnan(a):
             continue
+        sa = math.sqrt(RBV[d, n - 1, anchor])
+        m = 0
         for i in range(n):
             best = 0
             if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
                                              abs(RBZ[d, i, 1] - a) < abs(RBZ[d, i, 0] - a)):
                 best = 1
-            zc[i] = RBZ[d, i, best]
-            vc[i] = RBV[d, i, best]
+            zi = RBZ[d, i, best]
+            vi = RBV[d, i, best]
+            reach = 3.0 * (math.sqrt(vi) + sa) + 0.01 + 0.5 * (t - RBT[d, i])
+            if abs(zi - a) <= reach:
+                zc[m] = zi
+                vc[m] = vi
+                tc[m] = RBT[d, i]
+                m += 1
+        if m < nmin:
+            continue
         sw = 0.0
         st = 0.0
         sz = 0.0
-        for i in range(n):
+        for i in range(m):
             w = 1.0 / vc[i]
             sw += w
-            st += w * (RBT[d, i] - t)
+            st += w * (tc[i] - t)
             sz += w * zc[i]
         tm = st / sw
         zm = sz / sw
         stt = 0.0
         stz = 0.0
-        for i in range(n):
+        for i in range(m):
             w = 1.0 / vc[i]
-            dt = RBT[d, i] - t - tm
+            dt = tc[i] - t - tm
             stt += w * dt * dt
             stz += w * dt * (zc[i] - zm)
         slope = stz / stt if stt > 0 else 0.0
         # a story that needs the target faster than any the rig expects is not one
         # (sliding crosstalk between free-running units draws such lines)
         ok = abs(slope) <= vmax
-        for i in range(n):
-            pred = zm + slope * (RBT[d, i] - t - tm)
+        for i in range(m):
+            pred = zm + slope * (tc[i] - t - tm)
             if abs(zc[i] - pred) > 3.0 * math.sqrt(vc[i]) + 0.01:
                 ok = False
                 break
