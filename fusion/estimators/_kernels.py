@@ -52,7 +52,7 @@ def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
         "NH": np.zeros(n_dir, np.int64),
         "T": np.full(n_dir, -np.inf),
         "RBT": np.zeros((n_dir, RB)), "RBZ": np.zeros((n_dir, RB, 2)),
-        "RBV": np.zeros((n_dir, RB, 2)),
+        "RBV": np.zeros((n_dir, RB, 2)), "RBS": np.full((n_dir, RB), -1, np.int64),
         "RBN": np.zeros(n_dir, np.int64),
         "LAST_RAW": np.full(n_sensor, np.nan), "LAST_NEW_T": np.full(n_sensor, -np.inf),
     }
@@ -140,14 +140,37 @@ def _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH):
 
 
 @njit(cache=True)
-def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
+def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
+    """Append a rejected reading (both candidates, and its sensor) to the direction's
+    re-acquisition buffer, dropping the oldest when it is full."""
+    m = RBN[d]
+    if m == RB:
+        for j in range(RB - 1):
+            RBT[d, j] = RBT[d, j + 1]
+            RBS[d, j] = RBS[d, j + 1]
+            for c in range(2):
+                RBZ[d, j, c] = RBZ[d, j + 1, c]
+                RBV[d, j, c] = RBV[d, j + 1, c]
+        m = RB - 1
+    RBT[d, m] = t
+    RBS[d, m] = s
+    for c in range(2):
+        RBZ[d, m, c] = z[c]
+        RBV[d, m, c] = sg[c] * sg[c]
+    RBN[d] = m + 1
+
+
+@njit(cache=True)
+def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     """Do the rejected readings of the last `window` seconds tell one consistent story?
 
     Each buffered reading has one or two candidates. For each candidate of the newest
     reading (an anchor), every reading offers its candidate nearest the anchor; those
     within reach of the anchor (three sigma each, a centimetre, and 0.5 m/s of motion)
-    form the story, which needs at least `nmin` readings, a weighted straight line that
-    fits each within three sigma plus a centimetre, and a rate no faster than `vmax`.
+    form the story, which needs at least `nmin` readings — or, when two or more sensors
+    tell it, ``nmin // 2 + 1`` (independent witnesses agree sooner) — a weighted straight
+    line that fits each within three sigma plus a centimetre, and a rate no faster than
+    `vmax`.
     Readings outside the story (crosstalk, clutter) do not spoil it. Returns how many
     anchors pass; ``out[k]`` = (range now, rate, variance of the range).
     """
@@ -156,16 +179,19 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
     for i in range(n):
         if t - RBT[d, i] <= window:
             RBT[d, j] = RBT[d, i]
+            RBS[d, j] = RBS[d, i]
             for c in range(2):
                 RBZ[d, j, c] = RBZ[d, i, c]
                 RBV[d, j, c] = RBV[d, i, c]
             j += 1
     RBN[d] = j
     n = j
-    if n < nmin:
+    nfew = nmin // 2 + 1
+    if n < nfew:
         return 0
     npass = 0
     zc = np.empty(RB)
+    sc = np.empty(RB, np.int64)
     vc = np.empty(RB)
     tc = np.empty(RB)
     for anchor in range(2):
@@ -186,8 +212,14 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
                 zc[m] = zi
                 vc[m] = vi
                 tc[m] = RBT[d, i]
+                sc[m] = RBS[d, i]
                 m += 1
-        if m < nmin:
+        several = False
+        for i in range(1, m):
+            if sc[i] != sc[0]:
+                several = True
+                break
+        if m < (nfew if several else nmin):
             continue
         sw = 0.0
         st = 0.0
@@ -226,7 +258,7 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBN, nmin, window, vmax, out):
 @njit(cache=True)
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
-               W, X, P, NH, T, RBT, RBZ, RBV, RBN, LAST_RAW, LAST_NEW_T,
+               W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                o_nh, o_tt):
     """Run the Gaussian-sum Kalman estimator over events in the order `order`, in place.
@@ -360,20 +392,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     # predictive density of a reading outside every gate: the outlier term
                     ll = math.log(o_dens)
                     code = CROSSTALK if suspect else GATED
-                    m = RBN[d]
-                    if m == RB:
-                        for j in range(RB - 1):
-                            RBT[d, j] = RBT[d, j + 1]
-                            for c in range(2):
-                                RBZ[d, j, c] = RBZ[d, j + 1, c]
-                                RBV[d, j, c] = RBV[d, j + 1, c]
-                        m = RB - 1
-                    RBT[d, m] = t
-                    for c in range(2):
-                        RBZ[d, m, c] = z[c]
-                        RBV[d, m, c] = sg[c] * sg[c]
-                    RBN[d] = m + 1
-                    npass = _reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, vmax, ra)
+                    _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
+                    npass = _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n, reacq_w, vmax, ra)
                     if npass > 0:
                         NH[d] = npass
                         for k in range(npass):

@@ -131,8 +131,8 @@ RB = K.RB
 
 # Indices into the parameter vector (see `_params`).
 P_Q, P_GATE, P_NEAR_PRIOR, P_AMB, P_REACQ_N, P_REACQ_W, P_MAX_LAG, P_INIT_RATE, \
-    P_RESAMPLE, P_ROUGHEN = range(10)
-N_PARAMS = 10
+    P_RESAMPLE, P_ROUGHEN, P_VMAX = range(11)
+N_PARAMS = 11
 
 # Columns of the per-sensor model table (see `ParticleFuser._sensor_table`).
 S_HOLD, S_OFFSET, S_SPLIT, S_VSIG, S_IR_OUT, S_VSPAN, S_DR, S_W_HIT, S_W_SHORT, S_W_MAX, \
@@ -705,30 +705,11 @@ def _group(npart, npass):
     return npart // npass
 
 
-@njit(cache=True)
-def _buffer_rejected(d, t, z, sg, RBT, RBZ, RBV, RBN):
-    """Append a rejected reading (both candidates) to the re-acquisition buffer, as the
-    Kalman kernel does, dropping the oldest when it is full."""
-    m = RBN[d]
-    if m == RB:
-        for j in range(RB - 1):
-            RBT[d, j] = RBT[d, j + 1]
-            for c in range(2):
-                RBZ[d, j, c] = RBZ[d, j + 1, c]
-                RBV[d, j, c] = RBV[d, j + 1, c]
-        m = RB - 1
-    RBT[d, m] = t
-    for c in range(2):
-        RBZ[d, m, c] = z[c]
-        RBV[d, m, c] = sg[c] * sg[c]
-    RBN[d] = m + 1
-
-
 # ------------------------------------------------------------------------- the kernel
 @njit(cache=True)
 def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                  ev_volts, sens_kind, sens, grids, dir_split, par,
-                 R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBN, LAST_RAW, LAST_NEW_T,
+                 R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
                  o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                  o_nh, o_tt):
     """Run the particle estimator over events in the order `order`, in place.
@@ -748,6 +729,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
     amb = par[P_AMB]
     reacq_n = int(par[P_REACQ_N])
     reacq_w = par[P_REACQ_W]
+    vmax = par[P_VMAX]
     max_lag = par[P_MAX_LAG]
     init_rate = par[P_INIT_RATE]
     ess_min = par[P_RESAMPLE] * npart
@@ -842,23 +824,23 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                     code = CROSSTALK if suspect else GATED
                     innov = best_y
                     nis = best_nis
-                    if not suspect:
-                        _buffer_rejected(d, t, z, sg, RBT, RBZ, RBV, RBN)
-                        npass = K._reacq_check(d, t, RBT, RBZ, RBV, RBN, reacq_n, reacq_w, ra)
-                        if npass > 0:
-                            # one equal group of particles per consistent story, with the
-                            # Kalman path's spread (line-fit variance times the count)
-                            for k in range(npass):
-                                k0 = (k * _group(npart, npass))
-                                k1 = npart if k == npass - 1 else k0 + _group(npart, npass)
-                                _fill(d, k0, k1, ra[k, 0], math.sqrt(ra[k, 2] * reacq_n),
-                                      ra[k, 1], init_rate, 1.0 / npart, R, V, W, RNG)
-                            RBN[d] = 0
-                            code = REACQUIRED
-                            branch = 0
-                            bprob = 1.0 / npass
-                            _summary(d, split_s, split_d, R, V, W, MOM, mass)
-                            _modes(d, mass[1], has_split, amb, NH, PMAJ)
+                    K._buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
+                    npass = K._reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n,
+                                           reacq_w, vmax, ra)
+                    if npass > 0:
+                        # one equal group of particles per consistent story, with the
+                        # Kalman path's spread (line-fit variance times the count)
+                        for k in range(npass):
+                            k0 = (k * _group(npart, npass))
+                            k1 = npart if k == npass - 1 else k0 + _group(npart, npass)
+                            _fill(d, k0, k1, ra[k, 0], math.sqrt(ra[k, 2] * reacq_n),
+                                  ra[k, 1], init_rate, 1.0 / npart, R, V, W, RNG)
+                        RBN[d] = 0
+                        code = REACQUIRED
+                        branch = 0
+                        bprob = 1.0 / npass
+                        _summary(d, split_s, split_d, R, V, W, MOM, mass)
+                        _modes(d, mass[1], has_split, amb, NH, PMAJ)
                 else:
                     # an accepted reading says the track is not lost
                     RBN[d] = 0
@@ -941,7 +923,7 @@ def new_state(n_dir: int, n_sensor: int, n_particles: int, seed: int = 0) -> dic
     }
     # The screening and re-acquisition buffers are the Kalman kernel's, shapes and all.
     kal = K.new_state(n_dir, n_sensor, 1)
-    for key in ("RBT", "RBZ", "RBV", "RBN", "LAST_RAW", "LAST_NEW_T"):
+    for key in ("RBT", "RBZ", "RBV", "RBS", "RBN", "LAST_RAW", "LAST_NEW_T"):
         st[key] = kal[key]
     return st
 
@@ -959,6 +941,7 @@ def _params(est, roughening) -> np.ndarray:
     p[P_INIT_RATE] = est.init_rate_sigma_mps
     p[P_RESAMPLE] = est.resample_below
     p[P_ROUGHEN] = roughening
+    p[P_VMAX] = est.max_rate_mps
     return p
 
 
@@ -1072,7 +1055,7 @@ class ParticleFuser(Fuser):
         particle_run(order, t, direction, sensor, z, sg, code, flags, raw, volts,
                      self._kind, self._sens, self._grids, self._dir_split, self._ppar,
                      st["R"], st["V"], st["W"], st["NH"], st["T"], st["MOM"], st["PMAJ"],
-                     st["RNG"], st["RBT"], st["RBZ"], st["RBV"], st["RBN"], st["LAST_RAW"],
+                     st["RNG"], st["RBT"], st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"],
                      st["LAST_NEW_T"], out["code"], out["flags"], out["innov"], out["nis"],
                      out["branch"], out["bprob"], out["ll"], track, out["pmaj"], out["nh"],
                      out["tt"])
