@@ -331,7 +331,7 @@ class Fuser:
         K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv,
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
                      self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
-                     st["RBZ"], st["RBV"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
+                     st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
