@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["ACCEPTED", "AMBIGUOUS", "REACQUIRED", "FIRST_REJECT", "HELD", "DROPOUT",
-           "OUT_OF_RANGE", "CROSSTALK", "GATED", "INVALID", "LATE", "UNKNOWN_SENSOR",
+           "OUT_OF_RANGE", "CROSSTALK", "GATED", "INVALID", "LATE", "UNKNOWN_SENSOR", "STUCK",
            "NAMES", "name_of", "code_of", "is_accepted",
            "FLAG_TEMP_FALLBACK", "FLAG_CROSSTALK_SUSPECT", "FLAG_R_INFLATED", "FLAG_NAMES"]
 
@@ -24,9 +24,10 @@ GATED = 7           # innovation beyond the chi-square gate
 INVALID = 8         # NaN, infinite, negative time, malformed text frame
 LATE = 9            # older than the estimator's time by more than the allowed lag
 UNKNOWN_SENSOR = 10 # a sensor the rig does not describe
+STUCK = 11          # one raw value for longer than the sensor's noise allows: output stuck
 
 NAMES = ("accepted", "ambiguous", "reacquired", "held", "dropout", "out_of_range",
-         "crosstalk", "gated", "invalid", "late", "unknown_sensor")
+         "crosstalk", "gated", "invalid", "late", "unknown_sensor", "stuck")
 
 # Bit flags that qualify a decision (several may be set).
 FLAG_TEMP_FALLBACK = 1      # air temperature stale or missing: fallback value, widened sigma

@@ -17,7 +17,8 @@ from .estimators import _kernels as K
 from .measurements import Measurements
 from .noise import echo_mixture
 from .rig import Rig
-from .screening import air_at, classify_crosstalk
+from .screening import (air_at, classify_crosstalk, raw_noise, repeat_probability,
+                        stuck_limit, stuck_readings)
 from .sensors.air import speed_of_sound
 from scipy.stats import chi2
 
@@ -174,6 +175,10 @@ class Fuser:
         self._tau_min = np.array([2 * getattr(s, "min_range_m", 0.0) / c_fast for s in sens])
         self._tau_max = np.array([2 * getattr(s, "max_range_m", 0.0) / c_slow for s in sens])
         self._par = _params(rig.estimator)
+        # A unit whose output stays at one value for longer than its own noise allows is
+        # stuck: those readings are decided `stuck` before they reach the estimator.
+        self._stuck_limit = [stuck_limit(repeat_probability(*raw_noise(s))) for s in sens]
+        self._stuck_run = [None] * len(sens)
         self.state = K.new_state(len(self.directions), len(sens), rig.estimator.max_hypotheses)
         self._air_t = np.zeros(0)
         self._air_v = np.zeros(0)
@@ -274,7 +279,13 @@ class Fuser:
             if len(t_s) == 0:
                 continue
             m, temp = self.decode(name, t_s, raw, ping)
-            parts.append((self._index[name], t_s, raw, ping, m, temp))
+            i = self._index[name]
+            if self._stuck_limit[i]:
+                stuck, self._stuck_run[i] = stuck_readings(
+                    raw, (m.code == D.ACCEPTED) & np.isfinite(m.t_s), t_s,
+                    self._stuck_limit[i], self._hold[i], self._stuck_run[i])
+                m.code[stuck] = D.STUCK
+            parts.append((i, t_s, raw, ping, m, temp))
         if not parts:
             return None
         sensor = np.concatenate([np.full(len(p[1]), p[0], np.int64) for p in parts])

@@ -1,13 +1,17 @@
 """Screening decisions made on whole arrays before the estimator: air temperature at
-each reading, and crosstalk between echo rangers by ping timing.
+each reading, crosstalk between echo rangers by ping timing, and sensors whose output
+sticks at one value.
 """
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
 from .sensors.air import speed_of_sound
 
-__all__ = ["air_at", "classify_crosstalk", "safe_cycle_s"]
+__all__ = ["air_at", "classify_crosstalk", "safe_cycle_s", "repeat_probability",
+           "raw_noise", "stuck_limit", "stuck_readings"]
 
 _T_MIN_C, _T_MAX_C = -60.0, 90.0
 
@@ -120,3 +124,118 @@ def safe_cycle_s(max_range_m, ring_down_s=0.001, temp_min_c=-10.0, margin=1.1):
     """
     c = speed_of_sound(temp_min_c)
     return margin * (ring_down_s + 2.0 * float(np.max(max_range_m)) / c)
+
+
+# --------------------------------------------------------------------------------------
+# A sensor whose output sticks at one value
+# --------------------------------------------------------------------------------------
+def repeat_probability(sigma, quantum) -> float:
+    """Chance that two independent readings of a still target show the same raw value.
+
+    Each reading is the true value plus Gaussian noise of standard deviation `sigma`,
+    rounded to a grid of step `quantum` whose offset relative to the true value is
+    uniform (the usual quantisation model; B. Widrow and I. Kollar, *Quantization
+    Noise*, Cambridge University Press 2008, ch. 4-5, from memory). The two readings then
+    fall in one step with probability ``E[max(0, 1 - |D| / quantum)]``, ``D ~ N(0, 2
+    sigma^2)``, which is ``2 Phi(1/s) - 1 - 2 s (phi(0) - phi(1/s))`` with ``s = sqrt(2)
+    sigma / quantum``: about ``1 / (2 sqrt(pi) sigma / quantum)`` once the noise spans
+    a few steps. A raw value with no quantum (``quantum <= 0``: ideal, noise-free
+    numbers such as a simulation's) cannot be judged and counts as always repeating.
+    """
+    sigma, quantum = float(sigma), float(quantum)
+    if not quantum > 0:
+        return 1.0
+    if not sigma > 0:
+        return 1.0
+    s = math.sqrt(2.0) * sigma / quantum
+    a = 1.0 / s
+    phi0 = 1.0 / math.sqrt(2.0 * math.pi)
+    big_phi = 0.5 * (1.0 + math.erf(a / math.sqrt(2.0)))
+    return float(min(1.0, max(0.0, 2.0 * big_phi - 1.0
+                             - 2.0 * s * (phi0 - phi0 * math.exp(-0.5 * a * a)))))
+
+
+def raw_noise(sensor):
+    """``(sigma, quantum)`` of a sensor's raw value for a still target, in raw units.
+
+    The smallest noise the rig describes is used (the constant term of an echo ranger's
+    range noise at its minimum range), so a quiet unit is not taken for a stuck one.
+    """
+    if sensor.kind == "triangulation":
+        if sensor.output == "counts":
+            return sensor.volts_sigma, sensor.adc_vref / 2.0 ** sensor.adc_bits
+        return sensor.volts_sigma, 0.0
+    sigma_m = sensor.sigma_m + sensor.sigma_frac * sensor.min_range_m
+    if sensor.output == "echo_time":
+        return 2.0 * sigma_m / speed_of_sound(20.0), sensor.tick_s
+    if sensor.output == "pulse_width":
+        return sigma_m * sensor.seconds_per_m, sensor.tick_s
+    if sensor.output == "analog":
+        return sigma_m * sensor.volts_per_m, sensor.volts_step
+    return sigma_m, sensor.frame_unit_m
+
+
+def stuck_limit(p_repeat, false_alarm=1e-6, minimum=8) -> int:
+    """Measurement cycles of one unchanged raw value after which a sensor counts as stuck.
+
+    The run of ``n`` cycles happens by chance with probability ``p_repeat**(n - 1)``;
+    the limit keeps that below `false_alarm`, and is never below `minimum`. Returns 0
+    (never stuck) when the noise is too small against the quantum to tell a stuck output
+    from a steady one (``p_repeat >= 0.5``).
+    """
+    p = float(p_repeat)
+    if not p < 0.5:
+        return 0
+    if p <= 0.0:
+        return int(minimum)
+    return int(max(minimum, 1 + math.ceil(math.log(false_alarm) / math.log(p))))
+
+
+def stuck_readings(raw, usable, t_s, limit, hold_s=0.0, carry=None):
+    """Readings that repeat one raw value for `limit` or more measurement cycles in a row.
+
+    Parameters
+    ----------
+    raw : (n,) array
+        One sensor's raw values in the order they were read (numbers or text frames).
+    usable : (n,) bool
+        Readings that passed the sensor's own screening; only these form runs (a
+        dropout or invalid reading between two equal values neither breaks nor extends
+        a run).
+    t_s : (n,) array
+        Reading times.
+    limit : int
+        From `stuck_limit`; 0 turns the check off.
+    hold_s : float
+        The unit's own measurement cycle: host samples inside one cycle repeat it by
+        design, so a run counts ``floor(duration / hold_s) + 1`` cycles at most.
+    carry : tuple, optional
+        ``(value, first_time, readings)`` of the run in progress, from the previous call.
+
+    Returns
+    -------
+    stuck : (n,) bool
+    carry : tuple or None
+        The run in progress after these readings.
+    """
+    n = len(raw)
+    stuck = np.zeros(n, bool)
+    idx = np.flatnonzero(np.asarray(usable, bool))
+    if limit <= 0 or idx.size == 0:
+        return stuck, carry
+    v = np.asarray(raw)[idx]
+    t = np.asarray(t_s, dtype=float)[idx]
+    cont = np.empty(idx.size, bool)
+    cont[0] = carry is not None and bool(v[0] == carry[0])
+    cont[1:] = np.asarray(v[1:] == v[:-1], bool)
+    start = np.maximum.accumulate(np.where(cont, 0, np.arange(idx.size)))
+    in_carry = cont[0] & (start == 0)
+    count = np.arange(idx.size) - start + 1 + (np.where(in_carry, carry[2], 0) if cont[0] else 0)
+    t_first = np.where(in_carry, carry[1] if cont[0] else 0.0, t[start])
+    cycles = count
+    if hold_s > 0:
+        with np.errstate(invalid="ignore"):
+            cycles = np.minimum(count, np.floor((t - t_first) / hold_s) + 1)
+    stuck[idx] = cycles >= limit
+    return stuck, (v[-1], float(t_first[-1]), int(count[-1]))
+

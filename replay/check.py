@@ -87,8 +87,9 @@ class _TimeScan:
         finite = np.isfinite(t)
         self.nonfinite.add(~finite, start)
         self.negative.add(finite & (t < 0), start)
-        running = np.fmax.accumulate(np.concatenate(([self._max], t)))
-        self.backwards.add(t < running[:-1], start)
+        # Only finite times set the pace: after an infinite time every row would look late.
+        running = np.fmax.accumulate(np.concatenate(([self._max], np.where(finite, t, -np.inf))))
+        self.backwards.add(finite & (t < running[:-1]), start)
         prev = np.concatenate(([self._last], t[:-1]))
         self.duplicate.add(finite & (t == prev), start)
         d = t - prev
@@ -177,7 +178,7 @@ class CheckReport:
                        f"{'rate Hz':>8}  span s")
             for s in self.sensors:
                 rate = f"{s.rate_hz:8.2f}" if math.isfinite(s.rate_hz) else f"{'-':>8}"
-                span = (f"{s.t0_s:.3f} .. {s.t1_s:.3f}" if math.isfinite(s.t0_s) else "-")
+                span = (f"{_sec(s.t0_s)} .. {_sec(s.t1_s)}" if math.isfinite(s.t0_s) else "-")
                 gaps = f"  ({s.gaps} {'gap' if s.gaps == 1 else 'gaps'})" if s.gaps else ""
                 out.append(f"    {s.name:<{w}}  {s.kind:<13}  {s.output:<11}  {s.n:>9}  "
                            f"{rate}  {span}{gaps}")
@@ -199,12 +200,17 @@ class CheckReport:
         return "\n".join(out)
 
 
+def _sec(x: float) -> str:
+    """Seconds with millisecond digits, in exponent form once the digits would run on."""
+    return f"{x:.3f}" if abs(x) < 1e9 else f"{x:.6g}"
+
+
 def _count(n: int, noun: str) -> str:
     return f"{n} {noun}{'' if n == 1 else 's'}"
 
 
 def _span(t0, t1) -> str:
-    return f"{t0:.3f} .. {t1:.3f} s" if math.isfinite(t0) else "no finite times"
+    return f"{_sec(t0)} .. {_sec(t1)} s" if math.isfinite(t0) else "no finite times"
 
 
 def _interp(log: LogFile, name: str, lo: float, hi: float, fallback: float):
@@ -395,7 +401,7 @@ def _check_sensor(log, name, info, rig, problems, warnings) -> StreamSummary:
     med = times.median_interval
     gaps = _find_gaps(log, name, info.n, med) if math.isfinite(med) else []
     if gaps:
-        shown = "; ".join(f"{a:.3f}-{b:.3f} s ({b - a:.3f} s)" for _, a, b in gaps[:_LISTED])
+        shown = "; ".join(f"{_sec(a)}-{_sec(b)} s ({_sec(b - a)} s)" for _, a, b in gaps[:_LISTED])
         more = f" and {len(gaps) - _LISTED} more" if len(gaps) > _LISTED else ""
         warnings.append(_line(path, f"{where}/t_s", gaps[0][0],
                               f"{_count(len(gaps), 'gap')} longer than {GAP_FACTOR:g} x the "

@@ -41,7 +41,10 @@ def build_parser() -> argparse.ArgumentParser:
         prog="rangefuse",
         description=("Fuse IR triangulation rangers and ultrasonic echo rangers into one range "
                      "with an honest uncertainty; replay, tune and plot logged runs."),
-        epilog=SAFETY, formatter_class=_Formatter)
+        epilog="examples:\n  rangefuse demo --out demo-out\n"
+               "  rangefuse replay datasets/shelf-pass.h5 -o pass.track.h5 --smooth\n"
+               "  rangefuse COMMAND --help     (each command's options and an example)\n\n"
+               + SAFETY, formatter_class=_Formatter)
     parser.add_argument("--version", action="version", version=f"rangefuse {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks for errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -75,6 +78,13 @@ def main(argv=None) -> int:
         except OSError:
             pass
         return 0
+    except OSError as exc:  # disk full, quota, an unreadable file: one line, not a traceback
+        if args.debug:
+            raise
+        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+        print(f"rangefuse {args.command}: error: {where}{exc.strerror or exc}; no partial "
+              "output was kept", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print(f"rangefuse {args.command}: interrupted; no partial output was kept", file=sys.stderr)
         return 130

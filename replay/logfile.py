@@ -661,7 +661,12 @@ class LogFile:
         # reopening it per read would decompress the same chunk again for every window.
         ds = self._open.get(field)
         if ds is None:
-            ds = self._open[field] = self._f[field]
+            try:
+                ds = self._open[field] = self._f[field]
+            except (KeyError, OSError, RuntimeError, ValueError) as exc:
+                # It was there when the layout was checked: its header is damaged.
+                raise self._err(f"cannot open the dataset ({_hdf5_reason(exc)}) — the file is "
+                                "corrupt", field, start) from None
         try:
             if text:
                 return np.asarray(ds.asstr()[start:stop], dtype=object)

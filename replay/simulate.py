@@ -690,7 +690,11 @@ def register(subparsers) -> None:
     p = subparsers.add_parser("simulate", help="simulate a scenario into a log",
                               description="Simulate a scenario (rig, targets, air, "
                               "disturbances, faults) into a log with ground truth and "
-                              "per-reading labels. Same scenario and seed, same bytes.")
+                              "per-reading labels. Same scenario and seed, same bytes.",
+                              epilog="example:\n  rangefuse simulate "
+                              "datasets/shelf-pass.scenario.toml -o pass.h5 --seed 3\n\n"
+                              "The scenario format is in docs/scenario.md.",
+                              formatter_class=argparse.RawDescriptionHelpFormatter)
     _add_arguments(p)
     p.set_defaults(func=_run)
 

@@ -71,13 +71,19 @@ class TriangulationRanger:
         name = d.get("name", "?")
         unknown = set(d) - _KEYS
         if unknown:
-            raise ConfigError(f"unknown key {sorted(unknown)[0]!r}; expected one of "
+            key = sorted(unknown)[0]
+            raise ConfigError(f"unknown key {key!r}; expected one of "
                               f"{', '.join(sorted(_KEYS))}", file=where,
-                              field=f"sensor.{name}")
+                              field=f"sensor.{name}.{key}")
         if "curve" not in d:
             raise ConfigError("an IR triangulation ranger needs a [sensor.curve] table",
                               file=where, field=f"sensor.{name}.curve")
-        curve = TriangulationCurve.from_dict(d["curve"], where=where)
+        try:
+            curve = TriangulationCurve.from_dict(d["curve"], where=where)
+        except ConfigError as exc:  # name the table the key is in, not just the key
+            sub = f".{exc.field}" if exc.field and exc.field != "curve" else ""
+            raise ConfigError(exc.message, file=exc.file, field=f"sensor.{name}.curve{sub}",
+                              row=exc.row) from None
         kw = {}
         for key, typ in (("output", str), ("adc_bits", int), ("adc_vref", float),
                          ("volts_sigma", float), ("hold_s", float), ("offset_m", float),
