@@ -359,10 +359,10 @@ class Fuser:
             if p is None:
                 new.append((None, None, None))
                 continue
-            sel = has_ping & (sensor == j)
-            pj = np.concatenate([p, ping[sel]])
-            tj = np.concatenate([tf, tof[sel]])
-            rj = np.concatenate([np.full(len(p), -1, np.int64), rank[sel]])
+            mine = np.logical_and(sensor == j, has_ping)
+            pj = np.concatenate([p, ping[mine]])
+            tj = np.concatenate([tf, tof[mine]])
+            rj = np.concatenate([np.full(len(p), -1, np.int64), rank[mine]])
             o = np.argsort(pj, kind="stable")
             new.append((pj[o], tj[o], rj[o]))
         rx = np.where(has_ping, ping + tof, np.nan)
