@@ -250,6 +250,11 @@ class Rig:
     # --- construction ------------------------------------------------------------
     @classmethod
     def load(cls, path) -> "Rig":
+        return cls.load_with_text(path)[0]
+
+    @classmethod
+    def load_with_text(cls, path) -> tuple:
+        """``(rig, toml_text)`` from a rig file (the text as written, for embedding)."""
         path = os.fspath(path)
         try:
             with open(path, "rb") as fh:
@@ -258,7 +263,7 @@ class Rig:
             raise ConfigError(f"cannot read rig file: {exc.strerror}", file=path) from None
         except UnicodeDecodeError:
             raise ConfigError("rig file is not UTF-8 text", file=path) from None
-        return cls.from_toml(text, where=path)
+        return cls.from_toml(text, where=path), text
 
     @classmethod
     def from_toml(cls, text: str, where: str = "<rig>") -> "Rig":

@@ -81,15 +81,7 @@ def load_rig_text(path):
     """``(rig, toml_text)`` from a rig file: the text is embedded in the log as written."""
     from fusion.rig import Rig
 
-    path = os.fspath(path)
-    try:
-        with open(path, "rb") as fh:
-            text = fh.read().decode("utf-8")
-    except OSError as exc:
-        raise ConfigError(f"cannot read rig file: {exc.strerror}", file=path) from None
-    except UnicodeDecodeError:
-        raise ConfigError("rig file is not UTF-8 text", file=path) from None
-    return Rig.from_toml(text, where=path), text
+    return Rig.load_with_text(path)
 
 
 def _number(text: str, what: str):
