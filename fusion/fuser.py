@@ -305,17 +305,22 @@ class Fuser:
                                else np.full(len(p[1]), np.nan) for p in parts])
         bad_t = ~np.isfinite(t_meas)
         code[bad_t] = D.INVALID
-        self._screen_crosstalk(sensor, ping, tof, code, flags,
-                               _processing_rank(sensor, t_meas, ping))
+        order = _processing_order(sensor, t_meas, ping)
+        self._screen_crosstalk(sensor, ping, tof, code, flags, _rank_of(order))
+        # The order is kept with the times it was computed from: a caller that hands
+        # run_prepared other times (the tuner shifting latencies) gets a fresh sort.
         return dict(sensor=sensor, row=row, t_s=t_s, t_meas=t_meas, z=z, sg=sg, code=code,
-                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv, ping=ping)
+                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv, ping=ping,
+                    _order=(t_meas, order))
 
     def run_prepared(self, prep: dict | None) -> StepBatch:
         """Run the estimator over events from `prepare` (arrays are not modified)."""
         if prep is None:
             return _empty_batch()
         sensor, t_meas = prep["sensor"], prep["t_meas"]
-        order = _processing_order(sensor, t_meas, prep["ping"])
+        cached = prep.get("_order")
+        order = cached[1] if cached is not None and cached[0] is t_meas else \
+            _processing_order(sensor, t_meas, prep["ping"])
         bad_t = ~np.isfinite(t_meas)
         n = len(order)
         out = {k: np.empty(n, dt) for k, dt in (("code", np.int8), ("flags", np.int16),
@@ -438,12 +443,18 @@ def _processing_order(sensor, t_meas, ping):
     (two echo readings at one instant: the unit that pinged first heard its own sound),
     then to the sensor index."""
     key = np.where(np.isfinite(t_meas), t_meas, -np.inf)
+    # Each sensor's readings are nearly always in time order already, so a stable sort of
+    # the times alone (merging those runs) is cheap; only when two readings share a time
+    # do the tie-breaks matter, and then the full three-key sort decides.
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    if ks.size < 2 or bool(np.all(ks[1:] > ks[:-1])):
+        return order
     pkey = np.where(np.isfinite(ping), ping, np.inf)
     return np.lexsort((sensor, pkey, key))
 
 
-def _processing_rank(sensor, t_meas, ping):
-    order = _processing_order(sensor, t_meas, ping)
+def _rank_of(order):
     rank = np.empty(len(order), np.int64)
     rank[order] = np.arange(len(order))
     return rank

@@ -73,18 +73,18 @@ class ErrorStats:
 
     def add(self, err, sigma, zone):
         ok = np.isfinite(err) & np.isfinite(sigma) & (sigma > 0)
-        err, sigma, zone = err[ok], sigma[ok], zone[ok]
-        for z in range(3):
-            m = zone == z
-            if not m.any():
-                continue
-            e = err[m]
-            self.n[z] += e.size
-            self.s1[z] += e.sum()
-            self.s2[z] += (e * e).sum()
-            self.worst[z] = max(self.worst[z], float(np.abs(e).max()))
-            self.nees[z] += ((e / sigma[m]) ** 2).sum()
-            self.cover2[z] += (np.abs(e) <= 2 * sigma[m]).sum()
+        if not ok.any():
+            return
+        err, sigma, zone = err[ok], sigma[ok], zone[ok].astype(np.intp)
+        ae = np.abs(err)
+        self.n += np.bincount(zone, minlength=3)
+        self.s1 += np.bincount(zone, weights=err, minlength=3)
+        self.s2 += np.bincount(zone, weights=err * err, minlength=3)
+        worst = np.zeros(3)
+        np.maximum.at(worst, zone, ae)
+        self.worst = np.maximum(self.worst, worst)
+        self.nees += np.bincount(zone, weights=(err / sigma) ** 2, minlength=3)
+        self.cover2 += np.bincount(zone, weights=ae <= 2 * sigma, minlength=3)
 
     def merge(self, other):
         for k in ("n", "s1", "s2", "nees", "cover2"):

@@ -46,7 +46,7 @@ import numpy as np
 from .. import decisions as D
 from ..errors import ConfigError, InputError
 from ..measurements import Measurements
-from .air import echo_range, range_per_kelvin, speed_of_sound
+from .air import range_per_kelvin, speed_of_sound
 
 __all__ = ["EchoRanger", "OUTPUTS", "COMPENSATIONS", "DEFAULT_FRAME_PATTERN",
            "DEFAULT_FRAME_FORMAT"]
@@ -371,7 +371,7 @@ class EchoRanger:
                 bad = ~np.isfinite(x) | (x < 0)
                 x = np.where(bad, np.nan, x)
                 if self.output == "echo_time":
-                    reported = echo_range(x, temp, rh)
+                    reported = c * x / 2.0  # echo_range, with c computed once above
                     dropout = ~bad & ((x == 0) | (x >= self.timeout_s))
                 else:
                     scale = self.seconds_per_m if self.output == "pulse_width" else self.volts_per_m
@@ -426,7 +426,18 @@ class EchoRanger:
                              field="raw")
         rx = self._frame_regex()
         unit = self.frame_unit_m
-        return np.array([_parse_frame(rx, f, unit) for f in frames], dtype=float)
+        # A unit sends few distinct frames (one per count it can report): parse each once.
+        seen = {}
+        out = np.empty(n)
+        for i, f in enumerate(frames):
+            try:
+                v = seen.get(f)
+            except TypeError:  # an unhashable object is no frame
+                v = math.nan
+            if v is None:
+                v = seen[f] = _parse_frame(rx, f, unit)
+            out[i] = v
+        return out
 
     # ------------------------------------------------------------------ encode
     def encode(self, range_true_m, temp_c, relative_humidity=0.0, power_up_temp_c=None):
