@@ -20,7 +20,7 @@ from .rig import Rig
 from .screening import (air_at, classify_crosstalk, raw_noise, repeat_probability,
                         stuck_limit, stuck_readings)
 from .sensors.air import speed_of_sound
-from scipy.stats import chi2
+from ._chi2 import chi2_ppf
 
 __all__ = ["Fuser", "Estimate", "Decision", "StepBatch"]
 
@@ -116,7 +116,7 @@ class StepBatch:
 def _params(est, tau=None) -> np.ndarray:
     p = np.zeros(K.N_PARAMS)
     p[K.P_Q] = est.accel_psd
-    p[K.P_GATE] = np.inf if est.gate_probability >= 1.0 else chi2.ppf(est.gate_probability, 1)
+    p[K.P_GATE] = np.inf if est.gate_probability >= 1.0 else chi2_ppf(est.gate_probability, 1)
     p[K.P_K] = est.max_hypotheses
     p[K.P_PRUNE] = est.prune_weight
     p[K.P_NEAR_PRIOR] = est.near_prior

@@ -38,8 +38,8 @@ TRACK_FORMAT_VERSION = 1
 # plain, which on the bench's one-hour log halves the replay's time for 60 % more bytes.
 _FILTERS = dict(compression="gzip", compression_opts=1, shuffle=True, fletcher32=True)
 _PLAIN = dict(fletcher32=True)
-_WINDOW_ROWS = 65536  # readings per replay window when the window is chosen automatically
-_CHUNK = 65536
+_WINDOW_ROWS = 32768  # readings per replay window when the window is chosen automatically
+_CHUNK = 16384  # rows per chunk of a track column (128 KiB of float64)
 
 # track flags
 TRACK_MULTIMODAL = 1
@@ -297,7 +297,7 @@ def run(log, rig=None, *, out=None, smooth=False, window_s=None, progress=False,
         Also write Rauch-Tung-Striebel smoothed ranges.
     window_s : float, optional
         Seconds of log read per step (memory is proportional to it, not to log length).
-        Default: chosen per log so that a window holds about 65 536 readings (at least
+        Default: chosen per log so that a window holds about 32 768 readings (at least
         1 s, at most an hour).
     progress : bool
         Print a progress bar on stderr.
@@ -636,7 +636,7 @@ def register(sub):
     p.add_argument("--csv", action="store_true",
                    help="also write OUT.track.csv and OUT.decisions.csv")
     p.add_argument("--window", type=float, default=None, metavar="S",
-                   help="seconds of log read per step (default: about 65 536 readings)")
+                   help="seconds of log read per step (default: about 32 768 readings)")
     p.add_argument("--quiet", action="store_true", help="print no summary")
     p.set_defaults(func=_main)
 

@@ -929,10 +929,10 @@ def new_state(n_dir: int, n_sensor: int, n_particles: int, seed: int = 0) -> dic
 
 
 def _params(est, roughening) -> np.ndarray:
-    from scipy.stats import chi2
+    from fusion._chi2 import chi2_ppf
     p = np.zeros(N_PARAMS)
     p[P_Q] = est.accel_psd
-    p[P_GATE] = np.inf if est.gate_probability >= 1.0 else chi2.ppf(est.gate_probability, 1)
+    p[P_GATE] = np.inf if est.gate_probability >= 1.0 else chi2_ppf(est.gate_probability, 1)
     p[P_NEAR_PRIOR] = est.near_prior
     p[P_AMB] = est.ambiguous_below
     p[P_REACQ_N] = est.reacquire_count
