@@ -64,6 +64,10 @@ LABEL_LEGEND = ", ".join(f"{i} {name}" for i, name in enumerate(LABELS))
 CHUNK_ROWS = 65536          # rows per chunk for numbers (512 KiB of float64)
 _CHUNK_BYTES = 1 << 20      # cap for text chunks, whose rows are as wide as the longest frame
 _FILTERS = dict(compression="gzip", compression_opts=4, shuffle=True, fletcher32=True)
+# The HDF5 1.10 file format: every metadata block (object headers, chunk indexes) carries
+# a checksum, so a damaged header is reported instead of read as other numbers; readable
+# by HDF5 1.10 (2016) and later.
+LIBVER = ("v110", "v110")
 _SCAN_ROWS = 65536          # rows of t_s read at a time when scanning for window bounds
 
 
@@ -353,7 +357,7 @@ def write_log(path, rig_toml: str, sensors, environment=None, truth=None, clock:
     writer = f"rangefuse {__version__}" if writer is None else str(writer)
 
     with atomic_output(path, inputs) as tmp:
-        with h5py.File(tmp, "w") as f:
+        with h5py.File(tmp, "w", libver=LIBVER) as f:
             _write_layout(f, rig_toml, streams, env, tru, clock, writer, created_utc)
         fd = os.open(tmp, os.O_RDONLY)
         try:

@@ -24,7 +24,7 @@ from fusion.estimators.smoother import rts_smooth
 
 from . import metrics as M
 from ._io import atomic_output, refuse_overwrite
-from .logfile import open_log
+from .logfile import LIBVER, open_log
 
 __all__ = ["run", "ReplayResult", "TRACK_FORMAT", "TRACK_FORMAT_VERSION", "make_fuser",
            "load_rig", "register"]
@@ -318,7 +318,7 @@ def run(log, rig=None, *, out=None, smooth=False, window_s=None, progress=False,
     with atomic_output(out, inputs=paths) as tmp:
         # Chunks are written whole (see _Appender), so no chunk cache is needed; the
         # default one would hold megabytes per column for nothing.
-        with h5py.File(tmp, "w", track_order=True, rdcc_nbytes=0) as f5:
+        with h5py.File(tmp, "w", libver=LIBVER, track_order=True, rdcc_nbytes=0) as f5:
             result = _run_into(f5, paths, rig_given, smooth, window_s, progress)
     result.path = out
     result.seconds = time.perf_counter() - t_start

@@ -260,10 +260,6 @@ def _read_in_child(path, expected):
 
 
 @pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork to survive a crash")
-@pytest.mark.xfail(strict=True, reason=(
-    "HDF5 object headers of the default (earliest) file format carry no checksum, so a "
-    "damaged datatype or dataspace message reads as other numbers, or crashes the library; "
-    "writing with libver='latest' (checksummed headers) closes this (format decision)"))
 def test_damaged_dataset_header_is_detected_on_read(clean_log, tmp_path):
     """Flip each byte of one dataset's object header: the read must fail with
     LogFormatError or return exactly what was written."""
