@@ -123,7 +123,7 @@ def _decisions(track_path):
         names = json.loads(f.attrs["sensor_names"])
         g = f["decisions"]
         cols = {k: g[k][:] for k in ("sensor", "row", "t_s", "direction", "decision", "branch",
-                                     "z_far_m", "z_near_m")}
+                                     "z_far_m", "z_near_m", "flags")}
     return names, cols
 
 
@@ -190,6 +190,9 @@ def evaluate(src, tmp):
     reasons = np.bincount(code[xt & fused], minlength=len(D.NAMES))
     out["crosstalk_fused_as"] = {D.NAMES[c]: int(reasons[c]) for c in range(len(D.NAMES))
                                  if reasons[c]}
+    # diagnostic: how many of the fused crosstalk readings screening had flagged suspect
+    out["crosstalk_fused_flagged"] = int((xt & fused & ((dec["flags"] & D.FLAG_CROSSTALK_SUSPECT)
+                                                        != 0)).sum())
 
     # near-zone branch
     br = {"n_cand": 0, "n_valid": 0, "fused": 0, "correct": 0, "rejected": 0,
@@ -312,7 +315,8 @@ def main(argv=None):
     for r in results:
         if r["good_rejected_by"] or r["crosstalk_fused_as"] or r["branch"]["rejected_by"]:
             print(f"  {r['name']}: good readings rejected as {r['good_rejected_by'] or '-'}; "
-                  f"crosstalk fused as {r['crosstalk_fused_as'] or '-'}; near-zone IR "
+                  f"crosstalk fused as {r['crosstalk_fused_as'] or '-'} "
+                  f"({r['crosstalk_fused_flagged']} of them flagged suspect); near-zone IR "
                   f"readings with a valid echo rejected as {r['branch']['rejected_by'] or '-'}")
     print()
 

@@ -14,6 +14,9 @@ __all__ = ["air_at", "classify_crosstalk", "safe_cycle_s", "repeat_probability",
            "raw_noise", "stuck_limit", "stuck_readings"]
 
 _T_MIN_C, _T_MAX_C = -60.0, 90.0
+# Age limit of the pings a predicted crosstalk arrival is drawn from (within the
+# fuser's 1 s ping memory, so pushing one by one and a batch see the same pings).
+PREDICT_WINDOW_S = 0.5
 
 
 def air_at(t_s, sample_t_s, sample_temp_c, air):
@@ -55,13 +58,25 @@ def air_at(t_s, sample_t_s, sample_temp_c, air):
     return temp, sigma, fallback
 
 
-def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=None):
+def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=None,
+                       predict_window_s=PREDICT_WINDOW_S):
     """Find echo readings that are another unit's ping, by timing.
 
     A reading received at ``rx_t`` by unit ``a`` is *suspect* when another unit ``b``
     pinged at ``p`` with ``rx_t - p`` a plausible flight time for ``b``'s sound
     (inside ``[tau_min_s[b], tau_max_s[b]]``); it is *definite* crosstalk when that
     flight time also matches ``b``'s own echo time for the ping within ``tol_s``.
+
+    Screening is causal, and the two readings of a crosstalk pair arrive together (``a``
+    hears the sound that ``b`` hears as its own echo), so when ``a``'s reading is
+    screened first ``b``'s ping and echo time are not known yet. Then ``b``'s *predicted*
+    arrival is used: a free-running unit fires on a steady period, so its next ping is
+    its last known ping plus the last interval, and its echo time is close to the last
+    one it reported. The tolerance grows by the unit's observed interval change (ping
+    jitter) and its last change of echo time (target motion over one period). Only pings
+    at most `predict_window_s` before the reading are used, so that the one-by-one path
+    (whose ping memory is `fusion.fuser`'s ``_PING_MEMORY_S``) and a batch agree. A
+    match either way is *definite*: the track then decides between the two readings.
 
     Parameters
     ----------
@@ -79,6 +94,8 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
     rank : (n,) int array, optional
         Processing rank of each reading: a reading is matched only against pings whose
         readings rank before it (causal screening, as when readings are pushed one by one).
+    predict_window_s : float
+        Age limit of the pings a predicted arrival is drawn from; 0 turns prediction off.
 
     Returns
     -------
@@ -97,6 +114,11 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
             if b == a or p is None or len(p) == 0:
                 continue
             prank = entry[2] if len(entry) > 2 and rank is not None else None
+            # (before the window test below: the partner's own ping may be unknown yet)
+            if predict_window_s > 0:
+                pred = _predicted_match(rx, p, tof, prank, None if rank is None else rank[ia],
+                                        tau_min_s[b], tau_max_s[b], tol_s, predict_window_s)
+                definite[ia[pred]] = True
             lo = np.searchsorted(p, rx - tau_max_s[b], side="left")
             hi = np.searchsorted(p, rx - tau_min_s[b], side="right")
             cnt = hi - lo
@@ -113,6 +135,47 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
                     match &= prank[kk] < rank[ia]
                 definite[ia[match]] = True
     return suspect, definite
+
+
+_PREDICT_BACK = 8  # known pings scanned back for the last three causal ones
+
+
+def _predicted_match(rx, p, tof, prank, rank, tau_min, tau_max, tol, window):
+    """Readings received at `rx` that match the predicted next echo arrival of the unit
+    whose known pings are `p` (sorted), echo times `tof` and reading ranks `prank`
+    (see `classify_crosstalk`); only pings whose readings rank before each reading's
+    `rank` and no older than `window` before it count."""
+    n = rx.size
+    # the last three known (causal) pings before the reading, newest first
+    q = np.full((n, 3), np.nan)
+    e = np.full((n, 3), np.nan)
+    got = np.zeros(n, np.int64)
+    hi = np.searchsorted(p, rx - tau_min, side="right")
+    for off in range(1, _PREDICT_BACK + 1):
+        k = hi - off
+        ok = (k >= 0) & (got < 3)
+        if not ok.any():
+            break
+        kk = np.maximum(k, 0)
+        ok &= p[kk] >= rx - window
+        if prank is not None and rank is not None:
+            ok &= prank[kk] < rank
+        rows = np.flatnonzero(ok)
+        q[rows, got[rows]] = p[kk[rows]]
+        e[rows, got[rows]] = tof[kk[rows]]
+        got[rows] += 1
+    have = got == 3
+    period = q[:, 0] - q[:, 1]
+    jitter = np.abs(period - (q[:, 1] - q[:, 2]))
+    p_next = q[:, 0] + period
+    # the echo time of the newest ping that has one, and its change since the one before
+    tof0 = np.where(np.isfinite(e[:, 0]), e[:, 0], e[:, 1])
+    tof1 = np.where(np.isfinite(e[:, 0]), e[:, 1], e[:, 2])
+    drift = np.where(np.isfinite(tof1), np.abs(tof0 - tof1), 0.0)
+    with np.errstate(invalid="ignore"):
+        ok = (have & np.isfinite(tof0) & (p_next >= rx - tau_max) & (p_next <= rx - tau_min)
+              & (np.abs(rx - p_next - tof0) <= tol + jitter + drift))
+    return ok
 
 
 def safe_cycle_s(max_range_m, ring_down_s=0.001, temp_min_c=-10.0, margin=1.1):
