@@ -255,6 +255,30 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     return npass
 
 
+@njit(cache=True, inline="always")
+def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LAST_NEW_T):
+    """Per-reading screening both estimators share: late readings, held samples, and R
+    inflation for an IR ranger sampled faster than it updates.
+
+    Returns ``(code, flags, infl)``; updates the sensor's last new sample in place.
+    """
+    infl = 1.0
+    if code == ACCEPTED:
+        if NH[d] > 0 and t < T[d] - max_lag:
+            code = LATE
+        elif is_ir and hold > 0.0:
+            since = t - LAST_NEW_T[s]
+            if raw == LAST_RAW[s] and since < 1.5 * hold:
+                code = HELD
+            else:
+                if since < hold:
+                    infl = hold / max(since, 1e-6)
+                    flags |= FLAG_R_INFLATED
+                LAST_RAW[s] = raw
+                LAST_NEW_T[s] = t
+    return code, flags, infl
+
+
 @njit(cache=True)
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
@@ -310,21 +334,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
         branch = -1
         bprob = math.nan
         ll = math.nan
-        infl = 1.0
-        if code == ACCEPTED:
-            if NH[d] > 0 and t < T[d] - max_lag:
-                code = LATE
-            elif sens_kind[s] == KIND_IR and sens_hold[s] > 0.0:
-                raw = ev_raw[i]
-                since = t - LAST_NEW_T[s]
-                if raw == LAST_RAW[s] and since < 1.5 * sens_hold[s]:
-                    code = HELD
-                else:
-                    if since < sens_hold[s]:
-                        infl = sens_hold[s] / max(since, 1e-6)
-                        flags |= FLAG_R_INFLATED
-                    LAST_RAW[s] = raw
-                    LAST_NEW_T[s] = t
+        code, flags, infl = _screen(code, flags, d, s, t, ev_raw[i], sens_kind[s] == KIND_IR,
+                                    sens_hold[s], max_lag, NH, T, LAST_RAW, LAST_NEW_T)
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
         # Another unit pinged while this one listened: crosstalk is a far likelier
         # explanation of a reading off the track than it is for an ordinary reading.

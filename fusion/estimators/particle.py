@@ -753,27 +753,14 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
         branch = -1
         bprob = math.nan
         ll = math.nan
-        infl = 1.0
         row = sens[s]
         is_ir = sens_kind[s] == KIND_IR
         split_s = row[S_SPLIT] if is_ir else -math.inf
         split_d = dir_split[d]
         has_split = not math.isnan(split_d)
         # Screening shared with the Kalman kernel: late readings, held samples.
-        if code == ACCEPTED:
-            if NH[d] > 0 and t < T[d] - max_lag:
-                code = LATE
-            elif is_ir and row[S_HOLD] > 0.0:
-                raw = ev_raw[i]
-                since = t - LAST_NEW_T[s]
-                if raw == LAST_RAW[s] and since < 1.5 * row[S_HOLD]:
-                    code = HELD
-                else:
-                    if since < row[S_HOLD]:
-                        infl = row[S_HOLD] / max(since, 1e-6)
-                        flags |= FLAG_R_INFLATED
-                    LAST_RAW[s] = raw
-                    LAST_NEW_T[s] = t
+        code, flags, infl = K._screen(code, flags, d, s, t, ev_raw[i], is_ir, row[S_HOLD],
+                                      max_lag, NH, T, LAST_RAW, LAST_NEW_T)
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
         # As in the Kalman path: when another unit pinged while this one listened,
         # crosstalk is a far likelier explanation of a reading off the track.
