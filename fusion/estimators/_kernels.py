@@ -255,6 +255,39 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     return npass
 
 
+@njit(cache=True)
+def _keep_farther(d, mean, var, RBT, RBZ, RBV, RBS, RBN):
+    """After an accepted reading, forget the buffered rejected readings except those
+    beyond the track.
+
+    An accepted reading says the track is not lost — about the readings nearer than it:
+    an echo ranger hears the nearest reflector in its cone, so returns from something
+    nearer (clutter at the cone's edge, a passing object) come and go while the target
+    stays. Returns from beyond the track say more: the nearer thing the track may have
+    settled on is not always there. Those stay buffered across accepted readings, so a
+    track caught by intermittent clutter gets back to the target it hides (the beam
+    mixture's short component, Thrun, Burgard & Fox 2005, sec. 6.3, is the reason for
+    the asymmetry).
+    """
+    n = RBN[d]
+    j = 0
+    for i in range(n):
+        # the candidate nearest the track decides (an IR reading offers two)
+        best = 0
+        if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
+                                         abs(RBZ[d, i, 1] - mean) < abs(RBZ[d, i, 0] - mean)):
+            best = 1
+        z = RBZ[d, i, best]
+        if not math.isnan(z) and z - mean > 3.0 * math.sqrt(var + RBV[d, i, best]):
+            RBT[d, j] = RBT[d, i]
+            RBS[d, j] = RBS[d, i]
+            for c in range(2):
+                RBZ[d, j, c] = RBZ[d, i, c]
+                RBV[d, j, c] = RBV[d, i, c]
+            j += 1
+    RBN[d] = j
+
+
 @njit(cache=True, inline="always")
 def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LAST_NEW_T):
     """Per-reading screening both estimators share: late readings, held samples, and R
@@ -507,8 +540,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         innov = best_y
                         nis = best_nis
                     else:
-                        # an accepted reading says the track is not lost
-                        RBN[d] = 0
+                        _moments(W[d], X[d], P[d], NH[d], mom)
+                        _keep_farther(d, mom[0], mom[2], RBT, RBZ, RBV, RBS, RBN)
                         branch = 0 if pb0 >= pb1 else 1
                         bprob = (pb0 if branch == 0 else pb1) / (pb0 + pb1)
                         code = ACCEPTED if bprob >= amb else AMBIGUOUS

@@ -829,12 +829,12 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                         _summary(d, split_s, split_d, R, V, W, MOM, mass)
                         _modes(d, mass[1], has_split, amb, NH, PMAJ)
                 else:
-                    # an accepted reading says the track is not lost
-                    RBN[d] = 0
                     ess = _ess(WN)
                     _commit(d, W, WN, tot)
                     _summary(d, split_s, split_d, R, V, W, MOM, mass)
                     _modes(d, mass[1], has_split, amb, NH, PMAJ)
+                    # as in the Kalman path: keep only the rejected readings beyond the track
+                    K._keep_farther(d, MOM[d, 0], MOM[d, 2], RBT, RBZ, RBV, RBS, RBN)
                     if is_ir:
                         p_near = mass[0]
                         branch = 1 if p_near >= 0.5 else 0
