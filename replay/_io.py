@@ -7,7 +7,12 @@ import tempfile
 
 from fusion.errors import InputError
 
-__all__ = ["atomic_output", "write_atomic", "same_file", "refuse_overwrite"]
+__all__ = ["atomic_output", "write_atomic", "same_file", "refuse_overwrite", "check_output",
+           "FIGURE_SUFFIXES"]
+
+# Figure formats matplotlib writes without extra packages.
+FIGURE_SUFFIXES = (".png", ".pdf", ".svg", ".jpg", ".jpeg", ".tif", ".tiff", ".webp", ".eps",
+                   ".ps")
 
 
 def same_file(a, b) -> bool:
@@ -24,26 +29,47 @@ def refuse_overwrite(out, inputs, field="-o"):
                              "path (inputs are never overwritten)", file=os.fspath(out), field=field)
 
 
+def check_output(path, inputs=(), field="-o", suffixes=None):
+    """Refuse an output before any work is done: one of the inputs, a folder that does
+    not exist or cannot be written, or (with `suffixes`) a name whose ending says no
+    format we write. Returns the folder."""
+    path = os.fspath(path)
+    refuse_overwrite(path, inputs, field=field)
+    if suffixes is not None and os.path.splitext(path)[1].lower() not in suffixes:
+        raise InputError(f"cannot tell the format from the name; expected it to end in one "
+                         f"of {', '.join(suffixes)}", file=path, field=field)
+    if os.path.isdir(path):
+        raise InputError("is a folder; expected a file name", file=path, field=field)
+    folder = os.path.dirname(os.path.abspath(path)) or "."
+    if not os.path.isdir(folder):
+        raise InputError(f"folder {folder!r} does not exist", file=path, field=field)
+    if not os.access(folder, os.W_OK):
+        raise InputError(f"folder {folder!r} cannot be written", file=path, field=field)
+    try:  # some folders pass the permission test and still refuse files
+        fd, probe = tempfile.mkstemp(prefix=".rangefuse-probe-", dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot create a file in folder {folder!r} ({exc.strerror})",
+                         file=path, field=field) from None
+    os.close(fd)
+    os.remove(probe)
+    return folder
+
+
 @contextlib.contextmanager
-def atomic_output(path, inputs=(), suffix=".tmp"):
+def atomic_output(path, inputs=(), suffix=".tmp", field="-o"):
     """Yield a temporary path beside `path`; rename it over `path` only on success.
 
     A run killed part-way leaves no partial output (at worst a hidden ``.*.tmp`` file
     that is removed on the next clean exit of the same command).
     """
     path = os.fspath(path)
-    refuse_overwrite(path, inputs)
-    folder = os.path.dirname(os.path.abspath(path)) or "."
-    if not os.path.isdir(folder):
-        raise InputError(f"folder {folder!r} does not exist", file=path, field="-o")
-    if not os.access(folder, os.W_OK):
-        raise InputError(f"folder {folder!r} cannot be written", file=path, field="-o")
+    folder = check_output(path, inputs, field=field)
     try:
         fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=suffix,
                                    dir=folder)
     except OSError as exc:
-        raise InputError(f"cannot write to folder {folder!r} ({exc.strerror})", file=path,
-                         field="-o") from None
+        raise InputError(f"cannot create a file in folder {folder!r} ({exc.strerror})",
+                         file=path, field=field) from None
     os.close(fd)
     try:
         yield tmp

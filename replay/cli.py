@@ -11,6 +11,7 @@ import argparse
 import importlib
 import os
 import sys
+import textwrap
 
 from fusion import __version__
 from fusion.errors import RangefuseError
@@ -56,12 +57,21 @@ def build_parser() -> argparse.ArgumentParser:
                 raise
             continue
         mod.register(sub)
+    for p in sub.choices.values():  # every command's --help carries the caution
+        if "safety-rated" not in (p.epilog or ""):
+            raw = issubclass(p.formatter_class, argparse.RawDescriptionHelpFormatter)
+            caution = textwrap.fill(SAFETY, 88) if raw else SAFETY
+            p.epilog = ((p.epilog + "\n\n") if p.epilog else "") + caution
     return parser
 
 
 def main(argv=None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    argv = list(sys.argv[1:] if argv is None else argv)
+    # --debug is accepted anywhere on the line, before or after the command
+    debug = "--debug" in argv
+    args = parser.parse_args([a for a in argv if a != "--debug"])
+    args.debug = debug
     if not getattr(args, "func", None):
         parser.print_help()
         return 2

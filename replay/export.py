@@ -20,7 +20,6 @@ from __future__ import annotations
 import csv
 import json
 import os
-import re
 
 import h5py
 import numpy as np
@@ -29,6 +28,7 @@ from fusion import decisions as D
 from fusion.errors import InputError, LogFormatError
 
 from ._io import atomic_output
+from .logfile import _hdf5_reason, hdf5_open_problem
 
 __all__ = ["track_to_csv", "csv_prefix", "TrackFile", "SLICE_ROWS", "DECISION_CSV_COLUMNS",
            "TRACK_CSV_ORDER"]
@@ -51,12 +51,6 @@ TRACK_CSV_ORDER = ("t_s", "range_m", "sigma_m", "rate_mps", "rate_sigma_mps",
 # --------------------------------------------------------------------------------------
 # Reading a track file (shared with replay.plots)
 # --------------------------------------------------------------------------------------
-def _hdf5_reason(exc: BaseException) -> str:
-    text = str(exc)
-    m = re.search(r"\(([^()]*)\)\s*$", text)
-    return m.group(1) if m else text
-
-
 class TrackFile:
     """A track file opened for reading, its layout checked (no bulk data read).
 
@@ -84,8 +78,8 @@ class TrackFile:
         try:
             self.f = h5py.File(self.path, "r")
         except OSError as exc:
-            raise LogFormatError(f"not an HDF5 file ({_hdf5_reason(exc)}); expected a track "
-                                 "file written by `rangefuse replay`", file=self.path) from None
+            raise LogFormatError(f"{hdf5_open_problem(exc)}; expected a track file written by "
+                                 "`rangefuse replay`", file=self.path) from None
         try:
             self._load()
         except BaseException:

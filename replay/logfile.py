@@ -412,6 +412,18 @@ def _hdf5_reason(exc: BaseException) -> str:
     return m.group(1) if m else text
 
 
+def hdf5_open_problem(exc: BaseException) -> str:
+    """What a failure to open a file as HDF5 means, in words (no library internals)."""
+    reason = _hdf5_reason(exc)
+    if "signature" in reason:
+        return "not an HDF5 file"
+    if "truncated" in reason:
+        m = re.search(r"eof = (\d+).*stored_eof = (\d+)", reason)
+        got = f": {int(m.group(1)):,} of {int(m.group(2)):,} bytes present" if m else ""
+        return f"the file is truncated{got} (it was not written to the end)"
+    return f"cannot open as HDF5 ({reason}); the file is corrupt"
+
+
 def open_log(path) -> "LogFile":
     """Open a log for reading (same as ``LogFile(path)``); use it as a context manager."""
     return LogFile(path)
@@ -460,14 +472,8 @@ class LogFile:
         except PermissionError:
             raise InputError("permission denied", file=self.path) from None
         except OSError as exc:
-            reason = _hdf5_reason(exc)
-            if "signature" in reason:
-                msg = "not an HDF5 file (expected a rangefuse log)"
-            elif "truncated" in reason:
-                msg = f"the file is truncated ({reason}) — it was not written to the end"
-            else:
-                msg = f"cannot open as HDF5 ({reason}) — the file is corrupt or not a log"
-            raise LogFormatError(msg, file=self.path) from None
+            raise LogFormatError(f"{hdf5_open_problem(exc)}; expected a rangefuse log",
+                                 file=self.path) from None
         try:
             self._load_layout()
         except LogFormatError:

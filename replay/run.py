@@ -625,8 +625,7 @@ def register(sub):
         description="Replay one or more logs through the fusion core; write a track file "
                     "(HDF5: fused track per direction, one decision row per reading, the rig).",
         epilog="example:\n  rangefuse replay datasets/cold-store-dock.h5 -o dock.track.h5 "
-               "--smooth --plot dock.png\n\nFused ranges are not a safety-rated protective "
-               "function.", formatter_class=__import__("argparse").RawDescriptionHelpFormatter)
+               "--smooth --plot dock.png", formatter_class=__import__("argparse").RawDescriptionHelpFormatter)
     p.add_argument("logs", nargs="+", metavar="LOG", help="log file(s) (HDF5)")
     p.add_argument("--rig", help="rig TOML to use instead of the one embedded in each log")
     p.add_argument("-o", "--out", required=True,
@@ -642,26 +641,49 @@ def register(sub):
 
 
 def _main(args) -> int:
-    outs = []
+    from ._io import FIGURE_SUFFIXES, check_output
     if len(args.logs) == 1:
         outs = [args.out]
     else:
         if os.path.exists(args.out) and not os.path.isdir(args.out):
             raise InputError("with several logs, -o names a folder", file=args.out, field="-o")
-        os.makedirs(args.out, exist_ok=True)
+        if os.path.splitext(args.out)[1].lower() in (".h5", ".hdf5") and \
+                not os.path.isdir(args.out):
+            raise InputError("with several logs, -o names a folder (one track file per log "
+                             "goes in it); this looks like a file name", file=args.out,
+                             field="-o")
         outs = [os.path.join(args.out, os.path.splitext(os.path.basename(p))[0] + ".track.h5")
                 for p in args.logs]
     extra = [args.rig] if args.rig else []
-    for log, out in zip(args.logs, outs):
+    figs = [None] * len(outs)
+    if args.plot:
+        figs = [args.plot] if len(outs) == 1 else \
+            [os.path.splitext(o)[0] + os.path.splitext(args.plot)[1] for o in outs]
+    # Every output is checked before any work: a bad --plot must not cost a whole replay
+    # and leave the track file behind.
+    if len(outs) > 1:
+        os.makedirs(args.out, exist_ok=True)
+    for out, fig in zip(outs, figs):
+        check_output(out, args.logs + extra, field="-o")
+        if fig is not None:
+            check_output(fig, args.logs + extra + [out], field="--plot",
+                         suffixes=FIGURE_SUFFIXES)
+        if args.csv:
+            from .export import csv_prefix
+            for end in (".track.csv", ".decisions.csv"):
+                check_output(csv_prefix(out) + end, args.logs + extra, field="--csv")
+    for log, out, fig in zip(args.logs, outs, figs):
         res = run(log, rig=args.rig, out=out, smooth=args.smooth, window_s=args.window,
                   progress=sys.stderr.isatty(), inputs_extra=extra)
         if not args.quiet:
             print(res.summary())
         if args.csv:
             from .export import track_to_csv
-            track_to_csv(out)
-        if args.plot:
-            fig = args.plot if len(outs) == 1 else os.path.splitext(out)[0] + ".png"
+            for p in track_to_csv(out):
+                print(f"csv: {p}")
+        if fig is not None:
             res.plot(fig)
             print(f"figure: {fig}")
+        if args.quiet:
+            print(f"track file: {out}")
     return 0

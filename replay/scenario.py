@@ -476,6 +476,7 @@ class Scenario:
     created_utc: str = DEFAULT_CREATED_UTC
     clock: str = "seconds since the start of the simulated run"
     source: str = field(default="", compare=False)
+    rig_source: str = field(default="", compare=False)  # the rig file read, "" if inline
 
     def summary(self) -> str:
         lines = [f"scenario {self.name!r}: {self.duration_s:g} s, seed {self.seed}, rig "
@@ -607,7 +608,7 @@ def _parse(data: dict, ctx: _Ctx, base_dir: str) -> Scenario:
     truth_rate = ctx.num(data, "truth_rate_hz", (), 200.0, lo=MIN_TRUTH_RATE_HZ, hi=10000.0)
     created = ctx.string(data, "created_utc", (), DEFAULT_CREATED_UTC)
     clock = ctx.string(data, "clock", (), "seconds since the start of the simulated run")
-    rig, rig_toml = _rig(data, ctx, base_dir)
+    rig, rig_toml, rig_source = _rig(data, ctx, base_dir)
 
     # ---- air ----------------------------------------------------------------------
     a = ctx.table(data, "air", ())
@@ -747,7 +748,8 @@ def _parse(data: dict, ctx: _Ctx, base_dir: str) -> Scenario:
                     truth_rate_hz=truth_rate, air=air, targets=MappingProxyType(targets),
                     surfaces=tuple(surfaces), sensors=MappingProxyType(sims),
                     foreign=tuple(foreign), faults=tuple(faults), description=description,
-                    created_utc=created, clock=clock, source=ctx.where)
+                    created_utc=created, clock=clock, source=ctx.where,
+                    rig_source=rig_source)
 
 
 def _rig(data, ctx, base_dir):
@@ -764,7 +766,7 @@ def _rig(data, ctx, base_dir):
                 text = fh.read().decode("utf-8")
             except UnicodeDecodeError:
                 raise ConfigError("rig file is not UTF-8 text", file=path) from None
-        return Rig.from_toml(text, where=path), text
+        return Rig.from_toml(text, where=path), text, path
     if isinstance(v, dict):
         try:
             rig = Rig.from_dict(v, where=ctx.where, text=ctx.text)
@@ -772,7 +774,7 @@ def _rig(data, ctx, base_dir):
             fieldname = "rig." + exc.field if exc.field else "rig"
             row = exc.row if exc.row is not None else ctx.loc.line(("rig",))
             raise ConfigError(exc.message, file=ctx.where, field=fieldname, row=row) from None
-        return rig, rig.to_toml()
+        return rig, rig.to_toml(), ""
     raise ctx.error(("rig",), f"expected a path (string) or a [rig] table, got {_show(v)}")
 
 

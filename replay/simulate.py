@@ -60,6 +60,7 @@ from fusion.screening import safe_cycle_s
 from fusion.sensors.adc import adc_lsb_v, volts_to_counts
 from fusion.sensors.air import speed_of_sound
 
+from ._io import check_output
 from .logfile import SensorStream, write_log
 from .scenario import Scenario, load_scenario
 
@@ -623,11 +624,14 @@ def simulate(scenario, seed: int | None = None) -> SimulatedRun:
                         created_utc=sc.created_utc, clock=sc.clock, writer=writer)
 
 
+def _scenario_files(sc) -> list:
+    """The files a scenario was read from (itself and its rig file): never outputs."""
+    return [p for p in (sc.source, sc.rig_source) if p and os.path.exists(p)]
+
+
 def write_simulated(path, run: SimulatedRun, inputs=()) -> None:
     """Write a simulated run as a log file (atomically; never over an input)."""
-    ins = list(inputs)
-    if run.scenario.source and os.path.exists(run.scenario.source):
-        ins.append(run.scenario.source)
+    ins = list(inputs) + _scenario_files(run.scenario)
     write_log(path, run.rig_toml, list(run.streams.values()), run.environment, run.truth,
               clock=run.clock, writer=run.writer, created_utc=run.created_utc, inputs=ins)
 
@@ -677,7 +681,9 @@ def _add_arguments(p):
 
 
 def _run(args) -> int:
-    run = simulate(args.scenario, seed=args.seed)
+    sc = load_scenario(args.scenario)
+    check_output(args.output, [args.scenario] + _scenario_files(sc), field="--output")
+    run = simulate(sc, seed=args.seed)
     write_simulated(args.output, run, inputs=[args.scenario])
     if not args.quiet:
         print(run.summary())

@@ -318,8 +318,13 @@ def test_few_points_favour_the_parametric_family():
 
 def test_far_side_only_warns_that_the_near_side_is_extrapolated():
     r, v = _noisy_typical(n=20, seed=6, r_lo=0.2)
-    with pytest.warns(CalibrationWarning, match="near side"):
+    with pytest.warns(CalibrationWarning) as rec:
         curve = TriangulationCurve.fit(r, v)
+    texts = [str(w.message) for w in rec]
+    assert any("near side" in m for m in texts)
+    # With no point below the peak the near-side shape is free: the fit may also say a
+    # shape parameter is poorly determined or stopped at its bound; nothing else.
+    assert all(("near side" in m or "b_m" in m) for m in texts), texts
     # The far side is still calibrated.
     _, far = curve.ranges(formula(0.5, *TRUE_PARAMS))
     assert far == pytest.approx(0.5, abs=0.01)
