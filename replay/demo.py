@@ -3,12 +3,36 @@ from __future__ import annotations
 
 import argparse
 import os
+import textwrap
 
 from fusion.errors import InputError
 
 __all__ = ["demo_dir", "demo_log", "register"]
 
 DEMO_LOGS = ("cold-store-dock", "shelf-pass", "tuning-run")
+
+# What a newcomer should know to read each demo's summary (figures measured on these logs).
+DEMO_NOTES = {
+    "cold-store-dock": (
+        "Reading this run: the NIS below its bounds and the correlated innovations come "
+        "from the rig's cautious IR noise. Its gain_sigma (3 %) covers the dark bumper the "
+        "ranger meets from 85 s to 135 s, whose return is 10 % weaker; counted as white "
+        "noise it overstates the IR noise elsewhere (replayed without it, the near zone's "
+        "2-sigma cover falls from 99.5 % to 77 %). `rangefuse tune` estimates the noise "
+        "from a log."),
+    "shelf-pass": (
+        "Reading this run: a person (24 s) and a trolley (70 s) step into the front beam; "
+        "the track re-acquires within about 60 ms, which is where the 2.5 m worst error "
+        "and the large NEES come from. From 100 s to 108 s a shelf upright at the edge of "
+        "the front echo cone returns half the pings and draws the track for about 3 s in "
+        "all. Crosstalk between the two free-running echo rangers is told by ping timing."),
+    "tuning-run": (
+        "Reading this run: this log is for `rangefuse tune`. Its rig leaves the process "
+        "noise at the default first guess, so the NIS is below its bounds and the "
+        "innovations are correlated; `rangefuse tune` finds it from the log, and replayed "
+        "with the tuned rig the RMSE falls from 4.1 mm to 1.3 mm and the time-averaged "
+        "NIS comes to 0.97."),
+}
 
 
 def demo_dir() -> str:
@@ -63,6 +87,7 @@ def _main(args) -> int:
     track = os.path.join(args.out, args.log + ".track.h5")
     res = run(log, out=track, smooth=True)
     print(res.summary())
+    print("\n" + textwrap.fill(DEMO_NOTES[args.log], 92))
     fig = os.path.join(args.out, args.log + ".png")
     res.plot(fig)
     diag = os.path.join(args.out, args.log + ".diagnostics.png")
