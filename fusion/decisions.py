@@ -9,6 +9,7 @@ import numpy as np
 
 __all__ = ["ACCEPTED", "AMBIGUOUS", "REACQUIRED", "FIRST_REJECT", "HELD", "DROPOUT",
            "OUT_OF_RANGE", "CROSSTALK", "GATED", "INVALID", "LATE", "UNKNOWN_SENSOR", "STUCK",
+           "CLOCK_AHEAD",
            "NAMES", "name_of", "code_of", "is_accepted",
            "FLAG_TEMP_FALLBACK", "FLAG_CROSSTALK_SUSPECT", "FLAG_R_INFLATED", "FLAG_NAMES"]
 
@@ -25,9 +26,10 @@ INVALID = 8         # NaN, infinite, negative time, malformed text frame
 LATE = 9            # older than the estimator's time by more than the allowed lag
 UNKNOWN_SENSOR = 10 # a sensor the rig does not describe
 STUCK = 11          # one raw value for longer than the sensor's noise allows: output stuck
+CLOCK_AHEAD = 12    # stamped ahead of every other sensor by a jump of its own clock
 
 NAMES = ("accepted", "ambiguous", "reacquired", "held", "dropout", "out_of_range",
-         "crosstalk", "gated", "invalid", "late", "unknown_sensor", "stuck")
+         "crosstalk", "gated", "invalid", "late", "unknown_sensor", "stuck", "clock_ahead")
 
 # Bit flags that qualify a decision (several may be set).
 FLAG_TEMP_FALLBACK = 1      # air temperature stale or missing: fallback value, widened sigma

@@ -125,6 +125,7 @@ def _params(est, tau=None) -> np.ndarray:
     p[K.P_REACQ_N] = est.reacquire_count
     p[K.P_REACQ_W] = est.reacquire_window_s
     p[K.P_MAX_LAG] = est.max_lag_s
+    p[K.P_MAX_LEAD] = est.max_lead_s
     p[K.P_INIT_RATE] = est.init_rate_sigma_mps
     p[K.P_MERGE] = 1.0
     p[K.P_VMAX] = est.max_rate_mps
@@ -348,6 +349,7 @@ class Fuser:
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
                      self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
+                     st["T_SRC"], st["LAST_T"], st["INT_T"], st["AHEAD"], st["LEAP"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 

@@ -147,6 +147,9 @@ class EstimatorConfig:
     max_lag_s : float
         Readings older than the track by less than this are applied at the track time;
         older ones are rejected as late.
+    max_lead_s : float
+        A reading stamped more than this ahead of every other sensor, by a forward jump
+        of its own clock, is decided ``clock_ahead`` (0 turns the check off).
     particles : int
         Particle count for the particle estimator.
     resample_below : float
@@ -168,6 +171,7 @@ class EstimatorConfig:
     reacquire_window_s: float = 0.5
     max_rate_mps: float = 4.0
     max_lag_s: float = 0.05
+    max_lead_s: float = 0.25
     particles: int = 2000
     resample_below: float = 0.5
     seed: int = 0
@@ -186,9 +190,10 @@ class EstimatorConfig:
         if self.particles < 10:
             return "particles", "particles must be >= 10"
         for k in ("accel_psd", "init_rate_sigma_mps", "reacquire_window_s", "max_lag_s",
-                  "outlier_density", "max_rate_mps"):
+                  "max_lead_s", "outlier_density", "max_rate_mps"):
             v = getattr(self, k)
-            if not (math.isfinite(v) and v > 0) and not (k == "max_lag_s" and v == 0):
+            if not (math.isfinite(v) and v > 0) and not (k in ("max_lag_s", "max_lead_s")
+                                                         and v == 0):
                 return k, f"{k} must be a positive number"
         return None
 

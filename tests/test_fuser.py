@@ -540,3 +540,82 @@ def test_mount_offset_shifts_ranges():
     np.testing.assert_allclose(raw, _tof(np.array([0.7, 1.3]) - off_e), rtol=1e-12)
     m, _ = fuser.decode("echo", np.array([0.0, 0.1]), raw)
     np.testing.assert_allclose(m.z_m[:, 0], [0.7, 1.3], rtol=1e-12)
+
+
+# ------------------------------------------------------------------------ clock jumps
+# One clock stamps every sensor of a log (the log format's rule): a sensor whose stamps
+# leap ahead alone is the one to doubt (common practice, no source).
+
+def _two_streams(t_ir, t_echo, r=0.40):
+    v = float(CURVE.volts(r))
+    return {"ir": (np.asarray(t_ir, float), np.full(len(t_ir), v)),
+            "echo": (np.asarray(t_echo, float), np.full(len(t_echo), _tof(r)))}
+
+
+def _push_in_arrival_order(fuser, events):
+    return [fuser.push(name, t, raw)[1].code for _arrive, name, t, raw in sorted(events)]
+
+
+def test_a_gap_in_the_whole_log_loses_no_reading():
+    rig = _rig([_ir(), _echo()])
+    t_ir = np.r_[np.arange(0, 2, 0.02), np.arange(5, 7, 0.02)]     # all silent 2..5 s
+    t_echo = np.r_[np.arange(0.005, 2, 0.05), np.arange(5.005, 7, 0.05)]
+    b = Fuser(rig).process(_two_streams(t_ir, t_echo))
+    assert not np.any(b.code == D.CLOCK_AHEAD)
+    assert not np.any(b.code == D.LATE)
+
+
+def test_a_sensor_whose_clock_jumps_ahead_is_caught_and_the_others_keep_the_track():
+    rig = _rig([_ir(), _echo()])
+    v, tof = float(CURVE.volts(0.40)), _tof(0.40)
+    jump = 0.5
+    events = []  # (arrival, sensor, stamp, raw): arrival is the true time
+    for t in np.arange(0, 6, 0.02):
+        stamp = t + (jump if 2.0 <= t < 4.0 else 0.0)
+        events.append((t, "ir", stamp, v))
+    for t in np.arange(0.005, 6, 0.05):
+        events.append((t, "echo", t, tof))
+    f = Fuser(rig)
+    codes = _push_in_arrival_order(f, events)
+    ev = sorted(events)
+    ir_in = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and 2.0 <= a < 4.0]
+    echo_in = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "echo" and 2.0 <= a < 4.0]
+    ir_after = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and 4.1 <= a]
+    assert D.LATE not in echo_in
+    # the first leapt readings move the track's clock until an echo reading would have
+    # been late behind them (at most one echo period); every later one is caught
+    assert np.mean(np.array(ir_in) == D.CLOCK_AHEAD) > 0.95
+    assert ir_in.count(D.ACCEPTED) <= 0.05 / 0.02 + 1
+    assert D.CLOCK_AHEAD not in ir_after and ir_after.count(D.ACCEPTED) > 50
+    est = f.estimate("front")
+    assert abs(est.range_m - 0.40) < 0.01
+
+
+def test_a_sensor_left_alone_ahead_is_believed_after_a_while():
+    rig = _rig([_ir(), _echo()])
+    v, tof = float(CURVE.volts(0.40)), _tof(0.40)
+    events = [(t, "echo", t, tof) for t in np.arange(0.005, 2.0, 0.05)]
+    # the IR leaps 0.5 s at 1 s and the echo ranger then falls silent for good at 2 s
+    events += [(t, "ir", t + (0.5 if t >= 1.0 else 0.0), v) for t in np.arange(0, 5, 0.02)]
+    f = Fuser(rig)
+    codes = _push_in_arrival_order(f, events)
+    ev = sorted(events)
+    ir_late_phase = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and a >= 2.0]
+    from fusion.estimators._kernels import AHEAD_ESCAPE
+    ahead = [i for i, c in enumerate(ir_late_phase) if c == D.CLOCK_AHEAD]
+    assert len(ahead) <= AHEAD_ESCAPE
+    assert ir_late_phase[-50:].count(D.ACCEPTED) == 50
+
+
+def test_clock_screen_is_the_same_pushed_in_stamp_order_and_in_a_batch():
+    rig = _rig([_ir(), _echo()])
+    t_ir = np.r_[np.arange(0, 2, 0.02), np.arange(2.5, 4, 0.02)]   # leaps 0.5 s at 2 s
+    t_echo = np.arange(0.005, 4, 0.05)
+    streams = _two_streams(t_ir, t_echo)
+    b = Fuser(rig).process(streams).in_time_order()
+    f = Fuser(rig)
+    ev = sorted([(t, n, t, raw) for n, (ts, raws) in streams.items() for t, raw in zip(ts, raws)],
+                key=lambda e: (e[0], e[1] != "ir"))
+    pushed = [f.push(n, t, raw)[1].code for _a, n, t, raw in ev]
+    assert list(b.code) == pushed
+    assert not np.any(b.code == D.CLOCK_AHEAD)

@@ -25,16 +25,20 @@ from numba import njit
 # Keep in step with fusion.decisions (numba needs plain constants).
 ACCEPTED, AMBIGUOUS, REACQUIRED = 0, 1, 2
 FIRST_REJECT, HELD, DROPOUT, OUT_OF_RANGE, CROSSTALK, GATED, INVALID, LATE = 3, 3, 4, 5, 6, 7, 8, 9
+CLOCK_AHEAD = 12
 FLAG_CROSSTALK_SUSPECT = 2
 FLAG_R_INFLATED = 4
 KIND_IR, KIND_ECHO = 0, 1
 
 # Indices into the parameter vector (see fusion.fuser._params).
 P_Q, P_GATE, P_K, P_PRUNE, P_NEAR_PRIOR, P_AMB, P_OUTLIER, P_REACQ_N, P_REACQ_W, \
-    P_MAX_LAG, P_INIT_RATE, P_MERGE, P_VMAX = range(13)
-N_PARAMS = 13
+    P_MAX_LAG, P_INIT_RATE, P_MERGE, P_VMAX, P_MAX_LEAD = range(14)
+N_PARAMS = 14
 RB = 16  # re-acquisition buffer length per direction
 SUSPECT_OUTLIER_FACTOR = 100.0
+# A sensor stamped ahead stays `clock_ahead` while other sensors keep reporting; after this
+# many of its readings with no other sensor heard from, its clock is the only one left.
+AHEAD_ESCAPE = 20
 # A track whose predicted range sigma would pass this has forgotten its target: it
 # restarts from the next reading instead of predicting across the gap (which, for an
 # absurd time step, overflows to an infinite covariance).
@@ -55,6 +59,12 @@ def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
         "RBV": np.zeros((n_dir, RB, 2)), "RBS": np.full((n_dir, RB), -1, np.int64),
         "RBN": np.zeros(n_dir, np.int64),
         "LAST_RAW": np.full(n_sensor, np.nan), "LAST_NEW_T": np.full(n_sensor, -np.inf),
+        # clock screening: each sensor's latest reading time, its usual interval, whether
+        # it is stamped ahead (0 no; k >= 1 its k-th reading since another spoke), and
+        # whether its clock leapt and no other sensor has confirmed the new time
+        "LAST_T": np.full(n_sensor, -np.inf), "INT_T": np.full(n_sensor, np.nan),
+        "AHEAD": np.zeros(n_sensor, np.int64), "LEAP": np.zeros(n_sensor, np.int64),
+        "T_SRC": np.full(n_dir, -1, np.int64),   # the sensor whose reading set T
     }
 
 
@@ -288,14 +298,88 @@ def _keep_farther(d, mean, var, RBT, RBZ, RBV, RBS, RBN):
     RBN[d] = j
 
 
-@njit(cache=True, inline="always")
-def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LAST_NEW_T):
-    """Per-reading screening both estimators share: late readings, held samples, and R
-    inflation for an IR ranger sampled faster than it updates.
+@njit(cache=True)
+def _clock(code, d, s, t, max_lead, max_lag, NH, T, T_SRC, LAST_T, INT_T, AHEAD, LEAP):
+    """Catch a sensor whose clock jumped forward (one clock serves every sensor of a log).
 
-    Returns ``(code, flags, infl)``; updates the sensor's last new sample in place.
+    A reading that leaps more than `max_lead` past its own sensor's previous one marks
+    that sensor as having leapt; a later reading of any other sensor at a time at or
+    after the leapt one's confirms the new time (the whole log had a gap). But when the
+    track's time was set by a leapt sensor and a reading of another sensor, keeping its
+    own cadence, arrives older than the track by more than `max_lag`, the leapt clock is
+    the wrong one: that sensor is marked ahead, the track's time label goes back to this
+    reading's (its state is made of real measurements, and predicting across the leap
+    only added process noise), and nothing is lost to ``late``. A sensor marked ahead is
+    decided ``clock_ahead`` until a reading of it falls within `max_lead` of when the
+    sensors in step are due to report next (their latest reading plus their usual
+    interval), or until `AHEAD_ESCAPE` of its readings pass with no other sensor heard
+    from (then its clock is the only one left).
+
+    In time order (a batch, or readings pushed as they were stamped) no reading is late
+    behind a leap, so this only acts on readings pushed out of stamp order.
+    Returns the code (``CLOCK_AHEAD`` or unchanged); updates the clock state.
+    """
+    if not (max_lead > 0.0) or math.isnan(t) or code == INVALID:
+        return code
+    ns = LAST_T.shape[0]
+    prev = LAST_T[s]
+    leap = prev > -math.inf and t - prev > max_lead
+    if AHEAD[s] > 0:
+        due = -math.inf
+        for j in range(ns):
+            if j != s and AHEAD[j] == 0 and LAST_T[j] > -math.inf:
+                iv = INT_T[j] if not math.isnan(INT_T[j]) else 0.0
+                if LAST_T[j] + iv > due:
+                    due = LAST_T[j] + iv
+        if due == -math.inf or t - due <= max_lead:
+            AHEAD[s] = 0
+            LEAP[s] = 0
+        else:
+            AHEAD[s] += 1
+            if AHEAD[s] > AHEAD_ESCAPE:
+                AHEAD[s] = 0
+                LEAP[s] = 0
+    else:
+        src = T_SRC[d]
+        if (code == ACCEPTED and NH[d] > 0 and t < T[d] - max_lag and not leap
+                and src >= 0 and src != s and LEAP[src] != 0):
+            AHEAD[src] = 1
+            T[d] = t
+    if AHEAD[s] == 0:
+        if leap:
+            LEAP[s] = 1
+        else:
+            if prev > -math.inf and t > prev:
+                dt = t - prev
+                INT_T[s] = dt if math.isnan(INT_T[s]) else 0.9 * INT_T[s] + 0.1 * dt
+            for j in range(ns):
+                if j != s:
+                    if LEAP[j] != 0 and AHEAD[j] == 0 and t >= LAST_T[j] - max_lag:
+                        LEAP[j] = 0   # confirmed: the others are at its time too
+                    if AHEAD[j] > 0:
+                        AHEAD[j] = 1  # another sensor spoke: its escape count restarts
+    LAST_T[s] = t
+    if AHEAD[s] > 0:
+        if code == ACCEPTED or code == DROPOUT or code == OUT_OF_RANGE:
+            return CLOCK_AHEAD
+        return code
+    if code == ACCEPTED and t > T[d]:
+        T_SRC[d] = s  # this reading moves the track's time
+    return code
+
+
+@njit(cache=True, inline="always")
+def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LAST_NEW_T,
+            max_lead, T_SRC, LAST_T, INT_T, AHEAD, LEAP):
+    """Per-reading screening both estimators share: a clock that jumped ahead, late
+    readings, held samples, and R inflation for an IR ranger sampled faster than it
+    updates.
+
+    Returns ``(code, flags, infl)``; updates the sensor's clock and last new sample in
+    place.
     """
     infl = 1.0
+    code = _clock(code, d, s, t, max_lead, max_lag, NH, T, T_SRC, LAST_T, INT_T, AHEAD, LEAP)
     if code == ACCEPTED:
         if NH[d] > 0 and t < T[d] - max_lag:
             code = LATE
@@ -316,6 +400,7 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
                W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
+               T_SRC, LAST_T, INT_T, AHEAD, LEAP,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                o_nh, o_tt):
     """Run the Gaussian-sum Kalman estimator over events in the order `order`, in place.
@@ -340,6 +425,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
     reacq_n = int(par[P_REACQ_N])
     reacq_w = par[P_REACQ_W]
     max_lag = par[P_MAX_LAG]
+    max_lead = par[P_MAX_LEAD]
     init_rate = par[P_INIT_RATE]
     merge_d2 = par[P_MERGE]
     vmax = par[P_VMAX]
@@ -368,7 +454,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
         bprob = math.nan
         ll = math.nan
         code, flags, infl = _screen(code, flags, d, s, t, ev_raw[i], sens_kind[s] == KIND_IR,
-                                    sens_hold[s], max_lag, NH, T, LAST_RAW, LAST_NEW_T)
+                                    sens_hold[s], max_lag, NH, T, LAST_RAW, LAST_NEW_T,
+                                    max_lead, T_SRC, LAST_T, INT_T, AHEAD, LEAP)
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
         # Another unit pinged while this one listened: crosstalk is a far likelier
         # explanation of a reading off the track than it is for an ordinary reading.

@@ -131,8 +131,8 @@ RB = K.RB
 
 # Indices into the parameter vector (see `_params`).
 P_Q, P_GATE, P_NEAR_PRIOR, P_AMB, P_REACQ_N, P_REACQ_W, P_MAX_LAG, P_INIT_RATE, \
-    P_RESAMPLE, P_ROUGHEN, P_VMAX = range(11)
-N_PARAMS = 11
+    P_RESAMPLE, P_ROUGHEN, P_VMAX, P_MAX_LEAD = range(12)
+N_PARAMS = 12
 
 # Columns of the per-sensor model table (see `ParticleFuser._sensor_table`).
 S_HOLD, S_OFFSET, S_SPLIT, S_VSIG, S_IR_OUT, S_VSPAN, S_DR, S_W_HIT, S_W_SHORT, S_W_MAX, \
@@ -710,6 +710,7 @@ def _group(npart, npass):
 def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                  ev_volts, sens_kind, sens, grids, dir_split, par,
                  R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
+                 T_SRC, LAST_T, INT_T, AHEAD, LEAP,
                  o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                  o_nh, o_tt):
     """Run the particle estimator over events in the order `order`, in place.
@@ -731,6 +732,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
     reacq_w = par[P_REACQ_W]
     vmax = par[P_VMAX]
     max_lag = par[P_MAX_LAG]
+    max_lead = par[P_MAX_LEAD]
     init_rate = par[P_INIT_RATE]
     ess_min = par[P_RESAMPLE] * npart
     rough = par[P_ROUGHEN]
@@ -760,7 +762,8 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
         has_split = not math.isnan(split_d)
         # Screening shared with the Kalman kernel: late readings, held samples.
         code, flags, infl = K._screen(code, flags, d, s, t, ev_raw[i], is_ir, row[S_HOLD],
-                                      max_lag, NH, T, LAST_RAW, LAST_NEW_T)
+                                      max_lag, NH, T, LAST_RAW, LAST_NEW_T,
+                                      max_lead, T_SRC, LAST_T, INT_T, AHEAD, LEAP)
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
         # As in the Kalman path: when another unit pinged while this one listened,
         # crosstalk is a far likelier explanation of a reading off the track.
@@ -910,7 +913,8 @@ def new_state(n_dir: int, n_sensor: int, n_particles: int, seed: int = 0) -> dic
     }
     # The screening and re-acquisition buffers are the Kalman kernel's, shapes and all.
     kal = K.new_state(n_dir, n_sensor, 1)
-    for key in ("RBT", "RBZ", "RBV", "RBS", "RBN", "LAST_RAW", "LAST_NEW_T"):
+    for key in ("RBT", "RBZ", "RBV", "RBS", "RBN", "LAST_RAW", "LAST_NEW_T", "T_SRC", "LAST_T",
+                "INT_T", "AHEAD", "LEAP"):
         st[key] = kal[key]
     return st
 
@@ -925,6 +929,7 @@ def _params(est, roughening) -> np.ndarray:
     p[P_REACQ_N] = est.reacquire_count
     p[P_REACQ_W] = est.reacquire_window_s
     p[P_MAX_LAG] = est.max_lag_s
+    p[P_MAX_LEAD] = est.max_lead_s
     p[P_INIT_RATE] = est.init_rate_sigma_mps
     p[P_RESAMPLE] = est.resample_below
     p[P_ROUGHEN] = roughening
@@ -1043,7 +1048,9 @@ class ParticleFuser(Fuser):
                      self._kind, self._sens, self._grids, self._dir_split, self._ppar,
                      st["R"], st["V"], st["W"], st["NH"], st["T"], st["MOM"], st["PMAJ"],
                      st["RNG"], st["RBT"], st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"],
-                     st["LAST_NEW_T"], out["code"], out["flags"], out["innov"], out["nis"],
+                     st["LAST_NEW_T"], st["T_SRC"], st["LAST_T"], st["INT_T"], st["AHEAD"],
+                     st["LEAP"], out["code"],
+                     out["flags"], out["innov"], out["nis"],
                      out["branch"], out["bprob"], out["ll"], track, out["pmaj"], out["nh"],
                      out["tt"])
 
