@@ -40,7 +40,18 @@ example:
 
   from raw 10-bit counts on a 5 V reference:
       rangefuse calibrate pairs.csv -o left_ir.toml --bits 10 --vref 5.0
+
+Using the curve: CURVE.toml holds a [curve] table and a [calibration] record of the
+fit. In a rig file the curve belongs to its sensor: copy the [curve] table below the IR
+ranger's [[sensor]] entry and rename its header to [sensor.curve] (docs/rig.md,
+"Curves"); leave [calibration] out of the rig.
+
+Fused ranges are not a safety-rated protective function.
 """
+
+USAGE_NOTE = ("to use it: copy its [curve] table into the rig file below the IR ranger's "
+              "[[sensor]] entry,\n  renamed [sensor.curve] (docs/rig.md, \"Curves\"); "
+              "[calibration] only records the fit")
 
 
 def register(subparsers):
@@ -164,8 +175,11 @@ def _curve_document(result, source):
             calib[f"aicc_{key}"] = cand.aicc
             calib[f"residual_sigma_v_{key}"] = cand.residual_sigma_v
     head = ("# IR triangulation ranger curve: output voltage against range.\n"
-            "# [curve] is read by TriangulationCurve.from_dict; [calibration] records the fit.\n")
-    return head + dumps({"curve": curve.to_dict(), "calibration": calib})
+            "# To use it in a rig file, copy the [curve] table below the IR ranger's\n"
+            "# [[sensor]] entry and rename its header to [sensor.curve] (docs/rig.md,\n"
+            "# \"Curves\"). [calibration] records the fit; it does not go into a rig.\n"
+            "# (TriangulationCurve.from_dict reads the [curve] table as it is.)\n")
+    return head + dumps({"curve": curve.to_dict(), "calibration": calib}, trim_float_noise=True)
 
 
 def _plot_bytes(result, fmt, title):
@@ -272,5 +286,6 @@ def run(args) -> int:
     if adc_note:
         print(adc_note)
     print(f"wrote {out}" + (f" and {plot}" if figure is not None else ""))
+    print(USAGE_NOTE)
     return 0
 

@@ -3,6 +3,7 @@ each other."""
 from __future__ import annotations
 
 import argparse
+import math
 
 from fusion.rig import Rig
 from fusion.screening import safe_cycle_s
@@ -15,25 +16,35 @@ def firing_plan(rig: Rig, temp_min_c: float = -10.0, margin: float = 1.1):
 
     Each unit gets a slot as long as the slowest unit's echo window (ring-down plus the
     round trip to its maximum range at the lowest expected air temperature, plus a
-    margin for late multipath echoes). Returns a dict with ``slot_s``, ``cycle_s`` (one
-    full round), ``rate_hz`` per unit and the ``order`` with each unit's offset.
+    margin for late multipath echoes). Returns a dict with
+
+    - ``slot_s``: the time between consecutive pings, which is the rig's
+      ``[schedule] cycle_s`` (docs/rig.md);
+    - ``round_s``: one full round, every unit firing once (``slot_s`` times the number
+      of units);
+    - ``rate_hz``: readings per second of each unit (``1 / round_s``);
+    - ``order``: ``(name, offset_s)`` of each unit within the round.
     """
     order = list(rig.schedule.order) or list(rig.echo_names)
     if not order:
-        return {"order": [], "slot_s": 0.0, "cycle_s": 0.0, "rate_hz": 0.0}
+        return {"order": [], "slot_s": 0.0, "round_s": 0.0, "rate_hz": 0.0}
     ranges = [rig.sensors[n].max_range_m for n in order]
     slot = safe_cycle_s(ranges, rig.schedule.ring_down_s, temp_min_c, margin)
-    cycle = slot * len(order)
+    round_s = slot * len(order)
     return {"order": [(n, i * slot) for i, n in enumerate(order)], "slot_s": slot,
-            "cycle_s": cycle, "rate_hz": 1.0 / cycle}
+            "round_s": round_s, "rate_hz": 1.0 / round_s}
 
 
 def register(sub):
     p = sub.add_parser(
         "schedule", help="compute a crosstalk-free firing cycle for the echo rangers",
-        description="Compute a round-robin firing schedule for a rig's echo rangers: "
+        description="Compute a round-robin firing schedule for a rig's echo rangers:\n"
                     "every unit's echo window closes before the next unit fires.",
-        epilog="example:\n  rangefuse schedule datasets/shelf-pass.rig.toml --temp-min -20",
+        epilog="The printed cycle_s is the rig's [schedule] cycle_s: the time between "
+               "consecutive\npings (one slot), not the full round in which every unit "
+               "fires once.\n\n"
+               "example:\n  rangefuse schedule datasets/shelf-pass.rig.toml --temp-min -20\n\n"
+               "Fused ranges are not a safety-rated protective function.",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("rig", metavar="RIG", help="rig description (TOML)")
     p.add_argument("--temp-min", type=float, default=-10.0, metavar="C",
@@ -49,14 +60,24 @@ def _main(args) -> int:
     if not plan["order"]:
         print(f"{args.rig}: the rig has no echo rangers; nothing to schedule")
         return 0
-    print(f"round robin for {len(plan['order'])} echo rangers (sound at {args.temp_min:g} degC, "
+    n = len(plan["order"])
+    units = "echo ranger" if n == 1 else "echo rangers"
+    print(f"round robin for {n} {units} (sound at {args.temp_min:g} degC, "
           f"margin {args.margin:g}):")
-    print(f"  slot {1e3 * plan['slot_s']:.2f} ms, full cycle {1e3 * plan['cycle_s']:.2f} ms, "
-          f"{plan['rate_hz']:.1f} readings/s per unit")
+    print(f"  time between consecutive pings (one slot; the rig's cycle_s): "
+          f"{1e3 * plan['slot_s']:.2f} ms")
+    if n == 1:
+        print(f"  the unit fires once per slot: {plan['rate_hz']:.1f} readings/s")
+    else:
+        print(f"  full round, each of the {n} units firing once: {1e3 * plan['round_s']:.2f} ms, "
+              f"so {plan['rate_hz']:.1f} readings/s per unit")
     for name, off in plan["order"]:
         print(f"  {name:<16} fires at +{1e3 * off:7.2f} ms   (max range "
               f"{rig.sensors[name].max_range_m:g} m)")
+    names = ", ".join(f'"{name}"' for name, _ in plan["order"])
+    # rounded up to the microsecond, so the pasted value is never below the safe slot
+    cycle_us = math.ceil(plan["slot_s"] * 1e6 - 1e-6)
     print("\nrig TOML:\n[schedule]\nmode = \"round_robin\"\n"
-          f"cycle_s = {plan['slot_s']:.6f}\norder = [{', '.join(repr(n) for n, _ in plan['order'])}]"
-          .replace("'", '"'))
+          f"cycle_s = {cycle_us / 1e6:.6f}   # time between consecutive pings (one slot)\n"
+          f"order = [{names}]")
     return 0

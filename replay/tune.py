@@ -33,6 +33,7 @@ import numpy as np
 from scipy import optimize
 
 from fusion import decisions as D
+from fusion._toml import dumps
 from fusion.errors import InputError
 from fusion.fuser import Fuser, _params
 from fusion.rig import Rig
@@ -74,17 +75,44 @@ class TuneResult:
     n_evals: int = 0
     n_readings: int = 0
     message: str = ""
+    # what the evaluations were: (count, what for), summing to n_evals
+    eval_parts: list = field(default_factory=list)
+    # the innovations log-likelihood of fused readings only, as `rangefuse replay` sums it
+    loglik_fused_before: float = math.nan
+    loglik_fused_after: float = math.nan
+
+    @property
+    def best_iteration(self) -> int:
+        """The iteration (likelihood evaluation) that found the tuned values, as the
+        convergence figure numbers it."""
+        return max(self.history, key=lambda h: h["loglik"])["iteration"] if self.history else 0
 
     def summary(self) -> str:
+        parts = " + ".join(f"{n} {what}" for n, what in self.eval_parts if n)
+        head, *notes = self.message.split("; ")
         L = [f"tuning by {self.objective} over {self.n_readings} readings in "
-             f"{self.seconds:.1f} s ({self.n_evals} likelihood evaluations): {self.message}",
-             "", f"  {'parameter':<34}{'before':>12}{'tuned':>12}{'95% interval':>26}"]
+             f"{self.seconds:.1f} s: {head}",
+             f"  {self.n_evals} likelihood evaluations" + (f" = {parts}" if parts else ""),
+             f"  tuned values found at iteration {self.best_iteration} (the convergence "
+             "figure's iterations count these evaluations)"]
+        L += [f"  note: {n}" for n in notes]
+        L += ["", f"  {'parameter':<34}{'before':>12}{'tuned':>12}{'95% interval':>26}"]
         for p0, p in zip(self.initial, self.params):
             lo, hi = self.ci95.get(p.name, (math.nan, math.nan))
             L.append(f"  {p.name:<34}{p0.value:>12.4g}{p.value:>12.4g}"
                      f"{'[' + format(lo, '.4g') + ', ' + format(hi, '.4g') + ']':>26}")
         L.append("")
-        L.append(f"  innovations log-likelihood: {self.loglik_before:.1f} -> {self.loglik_after:.1f}")
+        L.append(f"  {'log-likelihood (nats)':<34}{'before':>12}{'tuned':>12}")
+        L.append(f"  {'tuning objective (*)':<34}{self.loglik_before:>12.1f}{self.loglik_after:>12.1f}")
+        L.append(f"  {'fused readings only (**)':<34}{self.loglik_fused_before:>12.1f}"
+                 f"{self.loglik_fused_after:>12.1f}")
+        L.append("  (*)  what the tuner maximises: the fused readings' innovations log-likelihood "
+                 "plus,")
+        L.append("       for each gated or crosstalk reading, the outlier term log(outlier "
+                 "density), so")
+        L.append("       no parameter change can score by pushing readings out of the gate")
+        L.append("  (**) the \"innovations log-likelihood\" of `rangefuse replay` (here summed "
+                 "over directions)")
         for label, (mean, n, (lo, hi)) in (("before", self.nis_before), ("after", self.nis_after)):
             L.append(f"  time-averaged NIS {label}: {mean:.3f} over {n} readings, 95% bounds "
                      f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
@@ -210,6 +238,7 @@ class _Problem:
                                                        self.rig.estimator.accel_psd))
         rig = self.rig.replace(estimator=est)
         total = 0.0
+        self.last_fused = 0.0
         nis_sum, nis_n = 0.0, 0
         batches = []
         for k, prep in enumerate(self.preps):
@@ -227,7 +256,11 @@ class _Problem:
             b = f.run_prepared(p2)
             acc = b.code < D.FIRST_REJECT
             gated = (b.code == D.GATED) | (b.code == D.CROSSTALK)
+            # The objective keeps gated (and crosstalk) readings with their outlier-density
+            # term, so a parameter change cannot gain by pushing readings out of the gate;
+            # the replay summary's figure sums the fused readings only (`last_fused`).
             total += float(np.nansum(b.loglik[acc | gated]))
+            self.last_fused += float(np.nansum(b.loglik[acc]))
             fin = acc & np.isfinite(b.nis) & (b.code != D.REACQUIRED)
             nis_sum += float(b.nis[fin].sum())
             nis_n += int(fin.sum())
@@ -494,6 +527,7 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
                          file=paths[0], field="/truth")
     values0 = {p.name: p.value for p in allp}
     ll0, nis0, _ = prob.run(values0)
+    llf0 = prob.last_fused
     history = [{"iteration": 0, "loglik": ll0, "params": dict(values0)}]
     fixed = {}
     if objective == "truth":
@@ -525,6 +559,8 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     cache = {}
     best = [max(h["loglik"] for h in history)]
     n_evals = [em_iters]
+    probing = [False]          # True while the curvature is measured around the optimum
+    best_probe = [-math.inf]
 
     def nll(x):
         key = tuple(np.round(x, 10))
@@ -532,7 +568,12 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
             ll, _, _ = prob.run(to_values(x))
             cache[key] = -ll
             n_evals[0] += 1
-            if ll > best[0]:  # the convergence history: each improvement of the optimum
+            if probing[0]:
+                # Probes around the tuned point measure curvature; they are not search
+                # steps, so they stay out of the convergence history (which must end at
+                # the values reported).
+                best_probe[0] = max(best_probe[0], ll)
+            elif ll > best[0]:  # the convergence history: each improvement of the optimum
                 best[0] = ll
                 history.append({"iteration": n_evals[0], "loglik": ll, "params": to_values(x)})
         return cache[key]
@@ -543,8 +584,9 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
               for p, is_lin in zip(free, lin)]
     message = "nothing to optimise"
     x = x0
+    eval_parts = [(em_iters, "by EM and the line search")]
     if em_iters and not max_evals_direct:
-        message = f"converged (EM and line search, {em_iters} evaluations)"
+        message = "converged (EM and line search)"
     elif len(free):
         res = optimize.minimize(nll, x0, method="Powell", bounds=bounds,
                                 options={"maxfev": max_evals, "xtol": 1e-2, "ftol": 1e-6})
@@ -552,10 +594,16 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         message = ("converged" if res.success else
                    f"stopped at the cap of {max_evals} evaluations (raise --max-evals)"
                    if res.nfev >= max_evals else str(res.message))
+        eval_parts.append((n_evals[0] - em_iters, "by the direct search"))
     values = to_values(x)
     ci = {}
     if intervals and len(free):
+        n_before = n_evals[0]
+        probing[0] = True
+        ll_tuned = -nll(x)
         H = _hessian(nll, x)
+        probing[0] = False
+        eval_parts.append((n_evals[0] - n_before, "for the curvature (95% intervals)"))
         kind = "marginal"
         try:
             np.linalg.cholesky(H)
@@ -571,31 +619,43 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
                 (math.exp(xi - 1.96 * sdi), math.exp(xi + 1.96 * sdi))
         if kind == "conditional":
             message += "; curvature not positive definite: intervals hold the other parameters fixed"
+        if best_probe[0] > ll_tuned + 0.05:
+            message += (f"; a curvature probe scored {best_probe[0] - ll_tuned:.2f} higher: the "
+                        "optimum is flat there (a 95% interval spans about 1.9 in log-likelihood)")
     if fixed and intervals:
         message += "; sensor noise fitted to truth residuals (intervals only for the rest)"
     ll1, nis1, _ = prob.run(values)
+    llf1 = prob.last_fused
     tuned = [dataclasses.replace(p, value=values[p.name]) for p in allp]
     return TuneResult(objective=objective, params=tuned, initial=allp, ci95=ci,
                       loglik_before=ll0, loglik_after=ll1, nis_before=nis0, nis_after=nis1,
                       rig=apply(rig, tuned), history=history,
                       seconds=time.perf_counter() - t0, n_readings=prob.n, message=message,
-                      n_evals=n_evals[0])
+                      n_evals=n_evals[0], eval_parts=eval_parts,
+                      loglik_fused_before=llf0, loglik_fused_after=llf1)
 
 
 # --- command line ---------------------------------------------------------------------------
 def register(sub):
     p = sub.add_parser(
         "tune", help="estimate process and sensor noise from logs; write a tuned rig",
-        description="Estimate the process noise and each sensor's noise parameters from "
-                    "one or more logs by maximising the innovations log-likelihood, or "
+        description="Estimate the process noise and each sensor's noise parameters from\n"
+                    "one or more logs by maximising the innovations log-likelihood, or\n"
                     "from residuals against ground truth when the logs carry it.",
         epilog="example:\n  rangefuse tune datasets/tuning-run.h5 -o tuned.rig.toml "
-               "--objective innovations --plot tune.png",
+               "--objective innovations --plot tune.png\n\n"
+               "Fused ranges are not a safety-rated protective function.",
         formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("logs", nargs="+", metavar="LOG")
+    p.add_argument("logs", nargs="+", metavar="LOG",
+                   help="log file(s) (HDF5) to tune on; several logs are fitted together, "
+                        "each on its own tracks")
     p.add_argument("--rig", help="starting rig (default: the one in the first log)")
     p.add_argument("-o", "--out", required=True, metavar="TUNED.toml", help="tuned rig to write")
-    p.add_argument("--objective", choices=("auto", "innovations", "truth"), default="auto")
+    p.add_argument("--objective", choices=("auto", "innovations", "truth"), default="auto",
+                   help="innovations: maximise the innovations log-likelihood (needs no "
+                        "ground truth); truth: fit each sensor's noise to its residuals "
+                        "against the logs' /truth, then the process noise by likelihood "
+                        "(every log needs truth); auto (default): innovations")
     p.add_argument("--param", action="append", metavar="NAME",
                    help="tune only this parameter (repeatable), e.g. estimator.accel_psd")
     p.add_argument("--latency", action="store_true", help="also tune sensor latencies")
@@ -616,7 +676,7 @@ def _main(args) -> int:
         with open(tmp, "w", encoding="utf-8") as fh:
             fh.write(f"# tuned by rangefuse tune ({res.objective}) from "
                      f"{', '.join(os.path.basename(p) for p in args.logs)}\n")
-            fh.write(res.rig.to_toml())
+            fh.write(dumps(res.rig.to_dict(), trim_float_noise=True))
     print(f"tuned rig: {args.out}")
     if args.plot:
         res.plot(args.plot)

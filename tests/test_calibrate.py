@@ -52,7 +52,10 @@ def test_calibrate_end_to_end_writes_a_curve_that_loads_back_equal(pairs_csv, tm
     doc = load(out)
     curve = TriangulationCurve.from_dict(doc["curve"], where=str(out))
     r, v = _pairs()
-    assert curve == fit_report(r, v).curve
+    # The file trims float noise (at most 1e-12 relative, fusion._toml), so compare the
+    # written values with the fit's to that tolerance.
+    _assert_close_1e12(doc["curve"], fit_report(r, v).curve.to_dict())
+    assert "[sensor.curve]" in printed and "[sensor.curve]" in out.read_text()
     assert doc["calibration"]["pairs"] == len(r)
     # The fitted unit still reads the typical unit's check values (common practice, no source).
     _, far = curve.ranges(1.5)
@@ -130,6 +133,8 @@ def test_help_shows_an_example(capsys):
     assert stop.value.code == 0
     text = capsys.readouterr().out
     assert "example:" in text and "rangefuse calibrate " in text and "--bits 10" in text
+    assert "[sensor.curve]" in text
+    assert "Fused ranges are not a safety-rated protective function." in text
 
 
 def test_read_pairs_skips_blank_lines_and_reports_rows(tmp_path):
@@ -164,6 +169,69 @@ def test_toml_dumps_reads_back_exactly():
     back = loads(dumps(data))
     assert back == data
     assert math.isnan(loads(dumps({"v": math.nan}))["v"])
+
+
+def _assert_close_1e12(got, want, where="curve"):
+    """Same keys and strings; numbers (nested lists too) equal within 1e-12 relative."""
+    if isinstance(want, dict):
+        assert set(got) == set(want), where
+        for k in want:
+            _assert_close_1e12(got[k], want[k], f"{where}.{k}")
+    elif isinstance(want, (list, tuple)):
+        assert len(got) == len(want), where
+        for i, (g, w) in enumerate(zip(got, want)):
+            _assert_close_1e12(g, w, f"{where}[{i}]")
+    elif isinstance(want, float):
+        assert (math.isnan(got) and math.isnan(want)) or \
+            abs(got - want) <= 1e-12 * abs(want), (where, got, want)
+    else:
+        assert got == want, where
+
+
+def test_trimmed_toml_writes_short_decimals_and_reads_back_within_1e12():
+    # Binary floating point cannot hold most decimals: 0.1 + 0.2 is 0.30000000000000004
+    # and the mean of three 0.05 is 0.05000000000000001 (IEEE 754 double, round to
+    # nearest; D. Goldberg, "What every computer scientist should know about
+    # floating-point arithmetic", ACM Computing Surveys 23(1), 1991). The trimmed writer
+    # writes these as the decimals they stand for.
+    noisy = {"a": 0.1 + 0.2, "b": (0.05 + 0.05 + 0.05) / 3, "c": 0.7 - 0.5,
+             "d": [0.7 * 0.5, 4.5 / 3 * 2, 1e-5 * 3], "e": 1200.0 + 2.3e-13}
+    text = dumps(noisy, trim_float_noise=True)
+    for short in ("a = 0.3\n", "b = 0.05\n", "c = 0.2\n", "[0.35, 3.0, 3e-05]", "e = 1200.0\n"):
+        assert short in text, text
+    _assert_close_1e12(loads(text), noisy, "doc")
+    # Values whose digits all carry information keep their exact repr: a fitted curve
+    # (17-digit parameters, covariance, AIC) and values of repeating decimals.
+    fitted = fit_report(*_pairs()).curve.to_dict()
+    exact = {"third": 1.0 / 3, "r": 0.745 / 12, "v": 1.2023333333333335, "big": 2.0 ** 0.5 * 1e300,
+             "tiny": 5e-324, "neg": -0.0, "inf": math.inf, "curve": fitted}
+    back = loads(dumps(exact, trim_float_noise=True))
+    assert back == exact
+    # Whatever the value, a trimmed file reads back within 1e-12 relative.
+    rng = np.random.default_rng(11)
+    values = np.concatenate([rng.normal(0, 1, 500) * 10.0 ** rng.integers(-12, 12, 500),
+                             np.round(rng.uniform(0, 5, 500), 3) * (1 + 2.2e-16)])
+    got = loads(dumps({"x": values.tolist()}, trim_float_noise=True))["x"]
+    np.testing.assert_allclose(got, values, rtol=1e-12, atol=0)
+    # The default writer stays exact, bit for bit.
+    assert loads(dumps(noisy)) == noisy
+
+
+def test_calibrated_curve_pastes_into_a_rig_as_sensor_curve(pairs_csv, tmp_path, capsys):
+    # docs/rig.md ("Curves"): a rig carries an IR ranger's curve as [sensor.curve].
+    from fusion.rig import Rig
+    for model in ("saturating-inverse", "table"):
+        out = tmp_path / f"{model}.toml"
+        assert main(["calibrate", str(pairs_csv), "-o", str(out), "--model", model]) == 0
+        printed = capsys.readouterr().out
+        assert "[sensor.curve]" in printed
+        text = out.read_text()
+        curve_table = text.split("[curve]\n", 1)[1].split("\n[calibration]", 1)[0]
+        rig = Rig.from_toml('name = "bench"\n\n[[sensor]]\nname = "ir_left"\n'
+                            'kind = "triangulation"\ndirection = "left"\noutput = "volts"\n'
+                            "[sensor.curve]\n" + curve_table, where=str(out))
+        assert rig.sensors["ir_left"].curve == TriangulationCurve.from_dict(load(out)["curve"])
+        assert rig.sensors["ir_left"].curve.model == model
 
 
 def test_toml_syntax_error_names_file_and_line():

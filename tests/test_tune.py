@@ -96,3 +96,71 @@ def test_tune_cli_writes_a_rig_that_loads(tmp_path, capsys):
     assert abs(rig.sensors["ir_front"].volts_sigma / 0.01 - 1) < 0.15
     assert "tuned rig" in capsys.readouterr().out
     assert main(["tune", LOG, "-o", LOG]) == 2
+
+
+@pytest.fixture(scope="module")
+def tuned_with_intervals():
+    rig = _true_rig()
+    return rig, tune(LOG, rig=rig, objective="innovations")
+
+
+def test_evaluation_counts_add_up_and_name_the_curvature(tuned_with_intervals):
+    _, res = tuned_with_intervals
+    assert sum(n for n, _ in res.eval_parts) == res.n_evals
+    parts = dict((what, n) for n, what in res.eval_parts)
+    # A central-difference Hessian of k parameters takes f(x), f(x +- h e_i) and
+    # f(x + h e_i + h e_j) for i < j: 1 + 2k + k(k-1)/2 evaluations (common practice,
+    # no source). Here k = 6 (process noise and five sensor-noise terms).
+    k = len(res.params)
+    assert parts["for the curvature (95% intervals)"] == 1 + 2 * k + k * (k - 1) // 2
+    text = res.summary()
+    assert f"{res.n_evals} likelihood evaluations = " in text
+    for n, what in res.eval_parts:
+        assert f"{n} {what}" in text
+
+
+def test_convergence_history_ends_at_the_reported_values(tuned_with_intervals):
+    # The figure marks the best iteration of the history: it must be the search step
+    # that produced the tuned values, not a curvature probe.
+    _, res = tuned_with_intervals
+    best = max(res.history, key=lambda h: h["loglik"])
+    assert best is res.history[-1]
+    tuned = {p.name: p.value for p in res.params}
+    assert best["params"] == pytest.approx(tuned, rel=1e-12)
+    assert best["iteration"] == res.best_iteration
+    n_search = sum(n for n, what in res.eval_parts if "curvature" not in what)
+    assert 1 <= res.best_iteration <= n_search
+    assert f"tuned values found at iteration {res.best_iteration} " in res.summary()
+
+
+def test_fused_loglik_matches_the_replay_summary(tuned_with_intervals, tmp_path):
+    # `rangefuse replay` sums the innovations log-likelihood over fused readings; the
+    # tuner's objective adds, for each gated or crosstalk reading, the log of the outlier
+    # density (docs/rig.md, estimator.outlier_density) it is scored with.
+    rig, res = tuned_with_intervals
+    before = run(LOG, rig=rig, out=tmp_path / "before.h5")
+    after = run(LOG, rig=res.rig, out=tmp_path / "after.h5")
+    assert res.loglik_fused_before == pytest.approx(sum(d.loglik for d in before.dirs.values()),
+                                                    rel=1e-9)
+    assert res.loglik_fused_after == pytest.approx(sum(d.loglik for d in after.dirs.values()),
+                                                   rel=1e-6)
+    rej = before.rejections()
+    assert "crosstalk" not in rej          # the tuning run has none (its echo rangers alternate)
+    n_gated = sum(rej.get("gated", {}).values())
+    assert n_gated > 0
+    assert res.loglik_before - res.loglik_fused_before == pytest.approx(
+        n_gated * math.log(rig.estimator.outlier_density), rel=1e-6)
+    text = res.summary()
+    assert "tuning objective" in text and "fused readings only" in text
+
+
+def test_tune_help_describes_every_argument(capsys):
+    from replay.cli import main
+    with pytest.raises(SystemExit):
+        main(["tune", "--help"])
+    text = capsys.readouterr().out
+    pos = text.split("positional arguments:", 1)[1].split("options:", 1)[0]
+    assert "LOG" in pos and "log file" in pos
+    obj = text.split("--objective {auto,innovations,truth}", 2)[2].split("--param", 1)[0]
+    assert "innovations" in obj and "truth" in obj and "default" in obj
+    assert "Fused ranges are not a safety-rated protective function." in text
