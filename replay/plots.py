@@ -48,13 +48,15 @@ FUSED_COLOUR = "#12355b"
 SMOOTH_COLOUR = "#e0218a"
 TRUTH_COLOUR = "#1c1c1c"
 BAND_ALPHA = 0.18
+OTHER_COLOUR = "#9a9a9a"    # the IR candidate not drawn as the reading (any sensor)
+OTHER_ALPHA = 0.35
 # One marker shape per rejection reason (hollow, in the sensor's colour).
 REASON_MARKERS = {"held": "s", "dropout": "v", "out_of_range": "^", "crosstalk": "X",
                   "gated": "D", "invalid": "*", "late": "<", "unknown_sensor": ">"}
 _DEFAULT_MARKER = "h"
 FIGSIZE_IN = (12.0, 7.0)
 DPI = 120
-_ACF_LAGS = 20
+_ACF_LAGS = M.Whiteness().lags   # the replay summary's Ljung-Box lags
 _HIST_LIMIT = 5.0
 
 
@@ -223,14 +225,21 @@ class _Envelope:
 class _TruthCursor:
     """Interpolates a truth series at nondecreasing query times, reading it in slices."""
 
-    def __init__(self, tf, t_ds, r_ds, query_field=None):
+    def __init__(self, tf, t_ds, r_ds, query_field=None, ordered=True):
         self.tf, self.t_ds, self.r_ds = tf, t_ds, r_ds
         self.query_field = query_field
+        # ordered=False: queries may step back (reading times less their sensor's latency);
+        # a query before what is kept re-reads the truth from its start.
+        self.ordered = ordered
         self.n = t_ds.shape[0]
+        self._reset()
+        self.last_q = -math.inf
+
+    def _reset(self) -> None:
         self.next = 0
         self.t = np.zeros(0)
         self.r = np.zeros(0)
-        self.last_q = -math.inf
+        self.dropped = False
 
     def _more(self) -> bool:
         if self.next >= self.n:
@@ -253,21 +262,49 @@ class _TruthCursor:
             return q.copy()
         fin = q[np.isfinite(q)]
         if fin.size:
-            if fin[0] < self.last_q or np.any(np.diff(fin) < 0):
-                raise self.tf.error("track times decrease; expected nondecreasing times "
-                                    "to compare with truth", field=self.query_field)
-            self.last_q = fin[-1]
-            while (self.t.size == 0 or self.t[-1] < fin[-1]) and self._more():
+            if self.ordered:
+                if fin[0] < self.last_q or np.any(np.diff(fin) < 0):
+                    raise self.tf.error("track times decrease; expected nondecreasing times "
+                                        "to compare with truth", field=self.query_field)
+                self.last_q = fin[-1]
+            elif self.dropped and (self.t.size == 0 or fin.min() < self.t[0]):
+                self._reset()
+            hi = fin.max()
+            while (self.t.size == 0 or self.t[-1] < hi) and self._more():
                 pass
         if self.t.size < 2:
             out = np.full(q.shape, np.nan)
         else:
             out = np.interp(q, self.t, self.r, left=np.nan, right=np.nan)
         if fin.size and self.t.size > 2:
-            # drop what no later query can need (keep one sample before the last query)
-            cut = max(0, int(np.searchsorted(self.t, fin[-1], side="right")) - 2)
-            self.t, self.r = self.t[cut:], self.r[cut:]
+            # drop what no later query can need (keep one sample before the last query;
+            # unordered: before the earliest query of this call)
+            keep = fin[-1] if self.ordered else fin.min()
+            cut = max(0, int(np.searchsorted(self.t, keep, side="right")) - 2)
+            if cut:
+                self.dropped = True
+                self.t, self.r = self.t[cut:], self.r[cut:]
         return out
+
+
+def _track_rig(tf):
+    """The rig the replay used (the track file's `/rig` TOML)."""
+    from fusion.errors import RangefuseError
+    from fusion.rig import Rig
+    if "rig" not in tf.f:
+        raise tf.error("dataset missing; expected the rig TOML in every track file",
+                       field="/rig")
+    text = tf.f["rig"][()]
+    text = text.decode("utf-8", "replace") if isinstance(text, bytes) else str(text)
+    try:
+        rig = Rig.from_toml(text, where=f"{tf.path}:/rig")
+    except RangefuseError as exc:
+        raise tf.error(f"the rig does not load ({exc})", field="/rig") from None
+    missing = [n for n in tf.sensor_names if n not in rig.sensors]
+    if missing:
+        raise tf.error(f"sensor(s) {', '.join(missing)} of sensor_names are not in the rig",
+                       field="/rig")
+    return rig
 
 
 # --------------------------------------------------------------------------------------
@@ -338,6 +375,15 @@ def _dot_size(n, small=4.0, large=1.8):
     return small + f * (large - small)
 
 
+def _reject_size(n):
+    """Marker size of n rejected readings of one kind: 2.6 pt for up to 100, halving
+    every fourfold more (no smaller than 1.2 pt), so a regular lattice of hundreds of
+    crosstalk echoes stays a faint stipple instead of hatching over the panel."""
+    if n <= 100:
+        return 2.6
+    return max(1.2, 2.6 - 0.5 * math.log2(n / 100))
+
+
 def _colour(i):
     return SENSOR_COLOURS[i % len(SENSOR_COLOURS)]
 
@@ -371,13 +417,17 @@ def plot_track(track_path, out=None, direction=None, t_range=None, max_points=20
 
     Each direction's axes show the raw range of every reading as small dots (one colour
     per sensor); for IR readings with two candidates (below the peak) the candidate the
-    filter chose is a dot and the other one a faint dot. Rejected readings are hollow
-    markers in the sensor's colour, one shape per reason; readings that carry no range
-    (dropouts, out of range) sit on a strip along the top edge. Over them: the fused range
-    with its 2-sigma band, the smoothed range when the replay smoothed, and truth (thin
-    dark line) when the log had it. Below each direction, the error against truth with
-    the filter's ±2σ; without truth, one panel with the air temperature the echo rangers
-    used.
+    filter chose is a dot and the other one a faint light-grey dot. Rejected readings are
+    small hollow markers in the sensor's colour, one shape per reason, a two-candidate IR
+    reading at the candidate nearer the fused track at its time (the track interpolated
+    between its rows); held repeats (exact repeats of a sample already drawn) are tiny
+    and faint, under the lines. Readings that carry no range (dropouts, out of range) sit
+    on a strip along the top edge. Over them: the fused range with its 2-sigma band, the
+    smoothed range when the replay smoothed, and truth (thin dark line) when the log had
+    it. The title of each direction gives the replay summary's RMSE against truth (every
+    reading scored against the track predicted to its time; smoothed: at the track rows).
+    Below each direction, the error of the track rows against truth with the filter's
+    ±2σ; without truth, one panel with the air temperature the echo rangers used.
 
     Parameters
     ----------
@@ -433,54 +483,99 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
     dec = tf.decisions(group)
     dir_index = {d: tf.direction_names.index(d) for d in dirs}
     ncodes = len(tf.decision_names)
+    rig = _track_rig(tf)
+    latency = np.array([rig.sensors[n].latency_s for n in tf.sensor_names] or [0.0])
+    q = rig.estimator.accel_psd
+    held_code = tf.decision_names.index("held") if "held" in tf.decision_names else -1
     # series[(direction, sensor, kind)] with kind "fused", "other" or the rejection code;
     # rug[(direction, sensor, code)]: rejected readings that have no range.
     series, rug = {}, {}
     counts = {d: np.zeros(ncodes, np.int64) for d in dirs}
     temp = _Envelope(max_points)
     fused_code = tf.fused_code
+    # Per direction: the track rows (one per fused reading, in the decisions' order), so
+    # every reading can be scored against the estimate predicted to its time, as the
+    # replay summary does (replay.run `_accumulate`), and a rejected IR reading with two
+    # candidates drawn at the one nearer the track.
+    pred = {}
+    for d in dirs:
+        cols = tf.track(group, d, extra=_STATE_COLS)
+        for k in _STATE_COLS:
+            if k not in cols:
+                raise tf.error("dataset missing; expected it in every track file",
+                               field=f"{tf.track_group(group, d).name}/{k}")
+        truth = tf.truth(group, d)
+        pred[d] = {"cols": cols, "nt": cols["t_s"].shape[0], "k": 0,
+                   "err": M.ErrorStats(), "edges": M.zone_edges(rig, d),
+                   "cursor": (_TruthCursor(tf, *truth, ordered=False)
+                              if truth is not None else None)}
     n = dec["t_s"].shape[0]
     for a, b in tf.slices(n):
         t = tf.read(dec["t_s"], a, b)
         sel = (t >= lo_t) & (t <= hi_t)
-        if not sel.any():
-            continue
-        t = t[sel]
-        col = {k: tf.read(dec[k], a, b)[sel] for k in
-               ("sensor", "direction", "decision", "branch", "z_far_m", "z_near_m", "temp_c")}
-        code = col["decision"].astype(np.int64)
+        code = tf.read(dec["decision"], a, b).astype(np.int64)
         if code.size and (code.min() < 0 or code.max() >= ncodes):
             raise tf.error(f"decision code outside 0..{ncodes - 1}", field=dec["decision"].name)
-        temp.add(t, col["temp_c"])
-        near_chosen = col["branch"] == 1
-        zf, zn = col["z_far_m"], col["z_near_m"]
-        chosen = np.where(near_chosen, zn, zf)
-        other = np.where(near_chosen, zf, zn)
-        # a rejected reading is shown at its first finite candidate
-        first = np.where(np.isfinite(zf), zf, zn)
+        dirn = tf.read(dec["direction"], a, b)
         fused = fused_code[code]
+        if not sel.any():
+            # only count the fused readings, to keep track rows and readings in step
+            for d in dirs:
+                pred[d]["k"] += int((fused & (dirn == dir_index[d])).sum())
+            continue
+        col = {k: tf.read(dec[k], a, b) for k in
+               ("sensor", "branch", "z_far_m", "z_near_m", "temp_c")}
+        sensor = col["sensor"].astype(np.int64)
+        if sensor.size and (sensor.min() < 0 or sensor.max() >= len(tf.sensor_names)):
+            raise tf.error(f"sensor index outside 0..{len(tf.sensor_names) - 1}",
+                           field=dec["sensor"].name)
+        t_meas = t - latency[sensor]
+        temp.add(t[sel], col["temp_c"][sel])
+        zf, zn = col["z_far_m"], col["z_near_m"]
+        chosen = np.where(col["branch"] == 1, zn, zf)
+        # range of the track at each reading's time (set below, per direction)
+        r_at = np.full(t.shape, np.nan)
         for d in dirs:
-            md = col["direction"] == dir_index[d]
+            md = dirn == dir_index[d]
+            if md.any():
+                r_at[md] = _score_direction(tf, pred[d], md, fused, t_meas, sel, q, d)
+        # a rejected reading with two candidates: the one nearer the track (the far one
+        # where there is no track yet); with one, that one
+        both = np.isfinite(zf) & np.isfinite(zn)
+        near_track = np.abs(zn - r_at) < np.abs(zf - r_at)
+        shown_rej = np.where(both, np.where(near_track, zn, zf), np.where(np.isfinite(zf), zf, zn))
+        shown = np.where(fused, chosen, shown_rej)
+        other = np.where(both, np.where(shown == zf, zn, zf), np.nan)
+        t, code, fused, sensor, dirn = t[sel], code[sel], fused[sel], sensor[sel], dirn[sel]
+        shown, other = shown[sel], other[sel]
+        for d in dirs:
+            md = dirn == dir_index[d]
             if not md.any():
                 continue
             counts[d] += np.bincount(code[md], minlength=ncodes)
-            for s in np.unique(col["sensor"][md]):
+            for s in np.unique(sensor[md]):
                 s = int(s)
-                ms = md & (col["sensor"] == s)
-                mf = ms & fused
-                for kind, m, z in (("fused", mf, chosen), ("other", mf, other)):
+                ms = md & (sensor == s)
+                # held repeats are drawn once, at their chosen candidate only
+                for kind, m in (("fused", ms & fused), ("other", ms & (code != held_code))):
+                    z = shown if kind == "fused" else other
                     m = m & np.isfinite(z)
                     if m.any():
                         series.setdefault((d, s, kind), _Stride(max_points)).add(t[m], z[m])
                 for c in np.unique(code[ms & ~fused]):
                     c = int(c)
                     mc = ms & (code == c)
-                    has = mc & np.isfinite(first)
+                    has = mc & np.isfinite(shown)
                     if has.any():
-                        series.setdefault((d, s, c), _Stride(max_points)).add(t[has], first[has])
-                    none = mc & ~np.isfinite(first)
+                        series.setdefault((d, s, c), _Stride(max_points)).add(t[has], shown[has])
+                    none = mc & ~np.isfinite(shown)
                     if none.any():
                         rug.setdefault((d, s, c), _Stride(max_points)).add(t[none])
+    for d in dirs:
+        if pred[d]["k"] != pred[d]["nt"]:
+            raise tf.error(f"has {pred[d]['nt']} rows but the decisions fused "
+                           f"{pred[d]['k']} readings of direction {d}; expected one row per "
+                           "fused reading", field=pred[d]["cols"]["t_s"].name)
     out = {"series": {k: v.result(2) for k, v in series.items()},
            "rug": {k: v.result(1)[0] for k, v in rug.items()},
            "counts": counts, "temp": temp.line(), "dirs": {},
@@ -489,7 +584,7 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
     flag_bits = {v: k for k, v in tf.track_flag_names.items()}
     reacq_bit = flag_bits.get("reacquired", 0)
     for d in dirs:
-        cols = tf.track(group, d, extra=("range_smoothed_m", "flags"))
+        cols = tf.track(group, d, extra=("range_smoothed_m", "sigma_smoothed_m", "flags"))
         fused = _Envelope(max_points)
         smooth = _Envelope(max_points) if "range_smoothed_m" in cols else None
         truth = tf.truth(group, d)
@@ -497,7 +592,8 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
         cursor = (_TruthCursor(tf, *truth, query_field=cols["t_s"].name)
                   if truth is not None else None)
         restarts = _Stride(max_points)
-        sums = {"n": 0, "s2": 0.0, "n_s": 0, "s2_s": 0.0}
+        err_s = M.ErrorStats()    # smoothed, at the track rows (as the replay summary)
+        edges = pred[d]["edges"]
         nt = cols["t_s"].shape[0]
         for a, b in tf.slices(nt):
             t = tf.read(cols["t_s"], a, b)
@@ -508,10 +604,12 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
             r = tf.read(cols["range_m"], a, b)[sel]
             s = tf.read(cols["sigma_m"], a, b)[sel]
             fused.add(t, r, r - 2 * s, r + 2 * s)
-            rs = None
+            rs = ss = None
             if smooth is not None:
                 rs = tf.read(cols["range_smoothed_m"], a, b)[sel]
                 smooth.add(t, rs)
+                if "sigma_smoothed_m" in cols:
+                    ss = tf.read(cols["sigma_smoothed_m"], a, b)[sel]
             if reacq_bit and "flags" in cols:
                 fl = tf.read(cols["flags"], a, b)[sel].astype(np.int64)
                 m = (fl & reacq_bit) != 0
@@ -520,20 +618,15 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
                 tr = cursor.at(t)
                 e = r - tr
                 err.add(t, 1e3 * e, -2e3 * s, 2e3 * s)
-                ok = np.isfinite(e)
-                sums["n"] += int(ok.sum())
-                sums["s2"] += float(np.sum(e[ok] ** 2))
-                if rs is not None:
-                    es = rs - tr
-                    ok = np.isfinite(es)
-                    sums["n_s"] += int(ok.sum())
-                    sums["s2_s"] += float(np.sum(es[ok] ** 2))
+                if rs is not None and ss is not None:
+                    err_s.add(rs - tr, ss, M.zone_of(tr, edges))
         info = {"fused_line": fused.line(), "fused_band": fused.band(), "n_track": fused.n,
                 "smooth": smooth.line() if smooth is not None else None,
                 "restarts": restarts.result(2), "truth": None, "err": None,
-                "rmse_m": math.sqrt(sums["s2"] / sums["n"]) if sums["n"] else math.nan,
-                "rmse_smooth_m": (math.sqrt(sums["s2_s"] / sums["n_s"]) if sums["n_s"]
-                                  else math.nan)}
+                # the replay summary's "all" rows: every reading, the track predicted to
+                # its time; smoothed: at the track rows
+                "errors": pred[d]["err"].table()["all"],
+                "errors_smooth": err_s.table()["all"]}
         if truth is not None:
             tl = _Envelope(max_points)
             t_ds, r_ds = truth
@@ -546,6 +639,55 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
             info["err"] = (err.line(), err.band())
         out["dirs"][d] = info
     return out
+
+
+_STATE_COLS = ("rate_mps", "cov_rr_m2", "cov_rv_m2ps", "cov_vv_m2ps2")
+
+
+def _score_direction(tf, P, md, fused, t_meas, sel, q, d):
+    """One slice of decisions, rows `md` of direction `d`: the track's range at each
+    reading's time (interpolated between track rows), and the error against truth of the
+    estimate predicted to that time, added to ``P["err"]`` for the rows inside the time
+    range (`sel`).
+
+    The scoring is the replay summary's (replay.run `_accumulate`): each reading is scored
+    against the track as it stood after the reading (the row it made if fused, else the
+    last row before it), predicted with the constant-velocity model to the reading's
+    measurement time, with the predicted variance as its sigma, zoned by truth.
+    """
+    fd = fused[md]
+    c0, nacc, nt = P["k"], int(fd.sum()), P["nt"]
+    if c0 + nacc > nt:
+        raise tf.error(f"has {nt} rows but the decisions fuse more readings of direction "
+                       f"{d}; expected one row per fused reading", field=P["cols"]["t_s"].name)
+    P["k"] = c0 + nacc
+    last = c0 - 1 + np.cumsum(fd)                 # the track row after each reading, -1: none
+    lo, hi = max(c0 - 1, 0), min(c0 + nacc + 1, nt)
+    tm = t_meas[md]
+    if hi <= lo:
+        return np.full(tm.shape, np.nan)
+    cols = P["cols"]
+    blk = {k: tf.read(cols[k], lo, hi) for k in ("t_s", "range_m") + _STATE_COLS}
+    r_at = np.interp(tm, blk["t_s"], blk["range_m"]) if blk["t_s"].size else \
+        np.full(tm.shape, np.nan)
+    r_at[~np.isfinite(tm)] = np.nan
+    sm = sel[md]
+    if P["cursor"] is not None and sm.any():
+        j = np.clip(last[sm] - lo, 0, hi - lo - 1)
+        have = last[sm] >= 0
+        x0 = np.where(have, blk["range_m"][j], np.nan)
+        tq = tm[sm]
+        truth = P["cursor"].at(tq)
+        seen = np.isfinite(tq) & np.isfinite(x0)
+        dt = np.zeros(tq.size)
+        dt[seen] = np.maximum(tq[seen] - blk["t_s"][j][seen], 0.0)
+        r_pred = x0 + blk["rate_mps"][j] * dt
+        v_pred = (blk["cov_rr_m2"][j] + 2 * dt * blk["cov_rv_m2ps"][j]
+                  + dt ** 2 * blk["cov_vv_m2ps2"][j] + q * dt ** 3 / 3)
+        with np.errstate(invalid="ignore"):
+            P["err"].add(np.where(seen, r_pred - truth, np.nan), np.sqrt(v_pred),
+                         M.zone_of(truth, P["edges"]))
+    return r_at
 
 
 def _robust_limits(values, pad=0.06, lower=0.0):
@@ -603,16 +745,24 @@ def _draw_track(data, dirs):
                         rasterized=True, zorder=2, gid=gid)
                 ylim_vals.append(z)
             elif kind == "other":
-                ax.plot(t, z, ls="none", marker="o", ms=_dot_size(t.size, 3.6, 2.0), mew=0,
-                        color=c, alpha=0.22,
+                ax.plot(t, z, ls="none", marker="o", ms=_dot_size(t.size, 3.0, 1.6), mew=0,
+                        color=OTHER_COLOUR, alpha=OTHER_ALPHA,
                         rasterized=True, zorder=1, gid=gid)
                 any_other = True
                 ylim_vals.append(z)
+            elif names[kind] == "held":
+                # exact repeats of a sample already drawn: tiny and faint, under the lines
+                used_reasons.add(kind)
+                ax.plot(t, z, ls="none", marker=REASON_MARKERS["held"],
+                        ms=_dot_size(t.size, 2.0, 1.2), mfc="none", mew=0.4, color=c,
+                        alpha=0.35, rasterized=True, zorder=1, gid=gid)
             else:
                 mk = REASON_MARKERS.get(names[kind], _DEFAULT_MARKER)
                 used_reasons.add(kind)
-                ax.plot(t, z, ls="none", marker=mk, ms=4.2, mfc="none", mew=0.9, color=c,
-                        alpha=0.9, rasterized=True, zorder=3, gid=gid)
+                # small and thin: hundreds of them (crosstalk) must not read as hatching
+                ax.plot(t, z, ls="none", marker=mk, ms=_reject_size(t.size),
+                        mfc="none", mew=0.5, color=c, alpha=0.6, rasterized=True, zorder=3,
+                        gid=gid)
                 ylim_vals.append(z)
         # rejected readings without a range: a strip along the top, one row per reason
         rug_rows = sorted({c for (dd, s, c) in data["rug"] if dd == d})
@@ -665,10 +815,12 @@ def _draw_track(data, dirs):
         nf = int(sum(cnt[i] for i, nm in enumerate(names) if nm in D.NAMES[:D.FIRST_REJECT]))
         bit = f"{d}: {total:,} readings, {100 * nf / total:.0f} % fused" if total else \
             f"{d}: no readings"
-        if math.isfinite(info["rmse_m"]):
-            bit += f"; RMSE against truth {1e3 * info['rmse_m']:.1f} mm"
-            if math.isfinite(info["rmse_smooth_m"]):
-                bit += f" (smoothed {1e3 * info['rmse_smooth_m']:.1f} mm)"
+        if info["errors"] is not None:
+            # the replay summary's number: every reading, the track predicted to its time
+            bit += (f"; RMSE against truth {1e3 * info['errors']['rmse_m']:.1f} mm over "
+                    f"{info['errors']['n']:,} readings")
+            if info["errors_smooth"] is not None:
+                bit += f" (smoothed, at track rows: {1e3 * info['errors_smooth']['rmse_m']:.1f} mm)"
         nrej = total - nf
         if nrej:
             bit += f"; {nrej:,} rejected"
@@ -733,13 +885,14 @@ def _draw_track(data, dirs):
         handles.append(Line2D([], [], ls="none", marker="o", ms=5, mew=0, color=_colour(s),
                               label=label))
     if any_other:
-        handles.append(Line2D([], [], ls="none", marker="o", ms=5, mew=0, color="#777777",
-                              alpha=0.3, label="other IR candidate"))
+        handles.append(Line2D([], [], ls="none", marker="o", ms=5, mew=0, color=OTHER_COLOUR,
+                              alpha=OTHER_ALPHA, label="other IR candidate"))
     for c in sorted(used_reasons):
         n_c = sum(int(data["counts"][d][c]) for d in dirs)
+        label = (f"held repeat ({n_c:,}; small, faint)" if names[c] == "held" else
+                 f"rejected: {names[c].replace('_', ' ')} ({n_c:,})")
         handles.append(Line2D([], [], ls="none", marker=REASON_MARKERS.get(names[c], "h"),
-                              ms=6, mfc="none", mew=1.0, color="#444444",
-                              label=f"rejected: {names[c].replace('_', ' ')} ({n_c:,})"))
+                              ms=6, mfc="none", mew=1.0, color="#444444", label=label))
     if any_rug:
         handles.append(Line2D([], [], ls="none", marker="",
                               label="(no range: on the top strip)"))
@@ -770,8 +923,10 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
                      max_points=200_000, run=None):
     """Consistency of the filter: innovations, NIS, their distribution and whiteness.
 
-    One row of four panels per direction, from the fused readings (decisions accepted,
-    ambiguous or reacquired):
+    One row of four panels per direction, from the readings the replay summary takes as
+    NIS samples: fused (accepted or ambiguous) with a finite NIS; re-acquiring readings
+    are left out, their NIS being against the track they overturned. The time-averaged
+    NIS, its verdict and the Ljung-Box p-value are therefore the summary's:
 
     1. innovations over time with ±2√S, where √S = |innovation| / √NIS (the file stores
        no S); one colour per sensor;
@@ -779,7 +934,8 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
        the last W readings with the 95 % bounds of a mean of W (Bar-Shalom et al. 2001,
        §5.4); the overall time-averaged NIS and its verdict are in the panel title;
     3. a histogram of normalised innovations sign(ν)·√NIS against the N(0, 1) density;
-    4. their sample autocorrelation at lags 1..20 with ±1.96/√N.
+    4. their sample autocorrelation at the summary's lags (1..10) with ±1.96/√N, and
+       the Ljung-Box p-value over those lags (Ljung & Box 1978).
 
     Parameters
     ----------
@@ -834,18 +990,19 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
         st = {d: {"innov": {}, "bound": {}, "nis": _Stride(max_points), "run": _Stride(max_points),
                   "hist": np.zeros(edges.size - 1, np.int64), "beyond": 0,
                   "white": M.Whiteness(lags=_ACF_LAGS), "sum": 0.0, "n": 0,
-                  "tail": np.zeros(0), "gated": 0} for d in dirs}
+                  "tail": np.zeros(0), "gated": 0, "reacq": 0} for d in dirs}
         gated_code = tf.decision_names.index("gated") if "gated" in tf.decision_names else -1
         for a, b in tf.slices(n_all):
             m = _fused_sel(tf, dec, a, b, lo_t, hi_t, gated_code=gated_code)
             if m is None:
                 continue
-            m, gated = m
+            m, gated, reacq = m
             cols = {k: tf.read(dec[k], a, b) for k in
                     ("t_s", "direction", "sensor", "innovation_m", "nis")}
             for i, d in dir_index.items():
                 S = st[d]
                 S["gated"] += int((gated & (cols["direction"] == i)).sum())
+                S["reacq"] += int((reacq & (cols["direction"] == i)).sum())
                 md = m & (cols["direction"] == i)
                 if not md.any():
                     continue
@@ -872,7 +1029,7 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
                 S["run"].add(t[ok], means)
                 S["tail"] = full[-(W - 1):] if W > 1 else np.zeros(0)
                 z = np.sign(nu) * np.sqrt(nis)
-                S["hist"] += np.histogram(z, bins=edges)[0]
+                S["hist"] += np.histogram(z[np.isfinite(z)], bins=edges)[0]
                 S["beyond"] += int((np.abs(z) > _HIST_LIMIT).sum())
                 S["white"].add(z)
                 S["sum"] += float(nis.sum())
@@ -912,7 +1069,10 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
         labels.append("±2√S (sensor colour)")
         ax_i.set_ylabel(f"{d}: innovation (mm)")
         ax_i.set_xlabel("time (s)")
-        note = f"\n({S['gated']:,} gated readings not shown)" if S["gated"] else "\n"
+        left_out = [f"{S[k]:,} {what}" for k, what in (("gated", "gated"),
+                                                        ("reacq", "re-acquiring"))
+                    if S[k]]
+        note = f"\n({' and '.join(left_out)} readings not shown)" if left_out else "\n"
         ax_i.set_title(f"innovations of {S['n']:,} fused readings{note}", fontsize=9)
         if S["innov"]:
             # scale to the innovations, not to the bounds: an IR reading at the curve's
@@ -923,8 +1083,9 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
             top = max([np.percentile(nu_all, 99.5) if nu_all.size else 0.0,
                        np.percentile(b_all, 75) if b_all.size else 0.0, 1e-3])
             ax_i.set_ylim(-1.35 * top, 1.35 * top)
-            ax_i.legend(handles, labels, fontsize=7.5, loc="upper right", markerscale=1.0,
-                        frameon=True, framealpha=0.85)
+            # below the axes, clear of the data
+            ax_i.legend(handles, labels, fontsize=7.5, loc="upper center",
+                        bbox_to_anchor=(0.5, -0.2), ncols=3, markerscale=1.0, frameon=False)
         # 2. NIS and its running mean
         tn, nis = S["nis"].result(2)
         ax_n.plot(tn, np.maximum(nis, 1e-6), ls="none", marker="o",
@@ -947,15 +1108,19 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
         mean = S["sum"] / S["n"] if S["n"] else math.nan
         lo_b, hi_b = M.nis_bounds(S["n"])
         verdict = M.consistency_verdict(mean, S["n"])
-        ax_n.set_title(f"time-averaged NIS {mean:.3g}: {verdict}\n(95 % bounds "
-                       f"{lo_b:.3f} to {hi_b:.3f})" if S["n"] else "no fused readings\n",
-                       fontsize=9)
+        # the numbers and wording of the replay summary (same readings, same format)
+        ax_n.set_title(f"time-averaged NIS {mean:.3f} over {S['n']:,} readings: {verdict}"
+                       f"\n(95 % bounds {lo_b:.3f} to {hi_b:.3f})" if S["n"] else
+                       "no fused readings\n", fontsize=9)
         if tn.size:
-            # head room above the points for the legend (log axis)
-            top = max(20.0, float(np.nanmax(nis)))
-            ax_n.set_ylim(max(1e-4, float(np.nanmin(np.maximum(nis, 1e-6))) / 2), top * 300)
-            ax_n.legend(fontsize=7.5, loc="upper right", frameon=True, framealpha=0.85,
-                        ncols=2)
+            # fit the axis to the points, the running mean and both chi-square intervals
+            pos = nis[nis > 0]
+            vals = [hi95, lo95] + ([float(pos.max()), float(pos.min())] if pos.size else [])
+            if tr_.size:
+                vals += [float(np.nanmax(rm)), blo, bhi]
+            ax_n.set_ylim(max(1e-6, min(vals)) / 2.5, max(vals) * 2.5)
+            ax_n.legend(fontsize=7.5, loc="upper center", bbox_to_anchor=(0.5, -0.2),
+                        ncols=2, frameon=False)
         # 3. histogram of normalised innovations
         width = edges[1] - edges[0]
         if S["n"]:
@@ -983,8 +1148,8 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
                          label=f"±1.96/√N (N={w['n']:,})")
             ax_a.axhline(-w["bound"], color="#b03a2e", lw=0.8, ls="--")
             ax_a.axhline(0, color="#333333", lw=0.6)
-            p_text = f"p = {w['p']:.2g}" if w["p"] >= 1e-16 else "p < 1e-16"
-            ax_a.set_title(f"whiteness\n(Ljung-Box {p_text})", fontsize=9)
+            ax_a.set_title(f"whiteness, lags 1..{len(w['rho'])}\n(Ljung-Box p = "
+                           f"{w['p']:.3g})", fontsize=9)
             ax_a.legend(fontsize=7.5, loc="upper right", frameon=False)
             top = max(0.1, 1.25 * max(abs(x) for x in w["rho"]), 1.6 * w["bound"])
             ax_a.set_ylim(-top, top)
@@ -1019,10 +1184,13 @@ def _fused_sel(tf, dec, a, b, lo_t, hi_t, gated_code=None):
         raise tf.error(f"decision code outside 0..{ncodes - 1}", field=dec["decision"].name)
     nis = tf.read(dec["nis"], a, b)
     nu = tf.read(dec["innovation_m"], a, b)
-    m = sel & tf.fused_code[code] & np.isfinite(nis) & (nis >= 0) & np.isfinite(nu)
+    # as the replay summary (replay.run `_accumulate`): fused readings with a finite NIS,
+    # except re-acquiring ones, whose NIS is against the track they overturned
+    reacq = tf.decision_names.index("reacquired") if "reacquired" in tf.decision_names else -1
+    m = sel & tf.fused_code[code] & np.isfinite(nis) & (code != reacq)
     if gated_code is None:
         return m
-    return m, sel & (code == gated_code)
+    return m, sel & (code == gated_code), sel & (code == reacq)
 
 
 # --------------------------------------------------------------------------------------
@@ -1099,16 +1267,23 @@ def plot_convergence(history, out=None):
     ax_l.set_ylabel("log-likelihood (nats)")
     ax_l.set_title("innovations log-likelihood", fontsize=9.5)
     positive = all(np.all(np.asarray(v) > 0) for _, v in params.values())
+    units = {name: _param_unit(name) for name in params}
+    ends = []
     for j, (name, (x, v)) in enumerate(params.items()):
         c = _colour(j)
-        ax_p.plot(x, v, color=c, marker="o", ms=2.5, lw=1.1, label=name, gid=f"param:{name}")
-        ax_p.annotate(f"{v[-1]:.4g}", (x[-1], v[-1]), xytext=(4, 0), textcoords="offset points",
-                      fontsize=8, color=c, va="center")
+        unit = units[name]
+        ax_p.plot(x, v, color=c, marker="o", ms=2.5, lw=1.1,
+                  label=f"{name} ({unit if unit is not None else 'unit ?'})",
+                  gid=f"param:{name}")
+        ends.append((x[-1], v[-1], c, name))
     if params:
         ax_p.set_yscale("log" if positive else "symlog")
         ax_p.legend(fontsize=8, loc="best", frameon=False)
-    ax_p.margins(x=0.08)   # room for the final values written at the right end
-    ax_p.set_ylabel("parameter value\n(unit in each name)")
+    ax_p.margins(x=0.12)   # room for the final values written at the right end
+    known = all(u is not None for u in units.values())
+    ax_p.set_ylabel("parameter value\n(unit after each name)" if known else
+                    "parameter value\n(unit after each name; ? = not known)")
+    _end_labels(fig, ax_p, ends)
     ax_p.set_xlabel("iteration")
     ax_p.set_title("noise parameters" + ("" if positive else " (symmetric log scale)"),
                    fontsize=9.5)
@@ -1119,6 +1294,49 @@ def plot_convergence(history, out=None):
     if out is not None:
         _save(fig, out, fmt, [])
     return fig
+
+
+# Units of the tuner's parameters, by the last part of their name ("sensor.<unit>.<key>").
+PARAM_UNITS = {"accel_psd": "m²/s³", "volts_sigma": "V", "sigma_m": "m", "sigma_frac": "1",
+               "latency_s": "s"}
+
+
+def _param_unit(name):
+    return PARAM_UNITS.get(str(name).rsplit(".", 1)[-1])
+
+
+def _end_labels(fig, ax, ends, fontsize=8.0):
+    """Final values written right of each line's last point, spread apart vertically so
+    no two overlap (a thin leader joins a moved label to its point)."""
+    if not ends:
+        return
+    fig.canvas.draw()     # the layout and the axis limits the labels are placed against
+    y = np.array([ax.transData.transform((x, v))[1] for x, v, _, _ in ends])
+    gap = 1.3 * fontsize * fig.dpi / 72.0          # one line of text, in pixels
+    order = np.argsort(y)
+    # clusters of labels closer than `gap`, each centred on the mean of its points
+    groups = [[i] for i in order]
+    while True:
+        pos = []
+        for g in groups:
+            c = float(np.mean(y[g]))
+            pos.append(c - gap * (len(g) - 1) / 2 + gap * np.arange(len(g)))
+        for k in range(len(groups) - 1):
+            if pos[k + 1][0] - pos[k][-1] < gap:
+                groups[k:k + 2] = [groups[k] + groups[k + 1]]
+                break
+        else:
+            break
+    want = np.empty(len(ends))
+    for g, p in zip(groups, pos):
+        want[g] = p
+    for i, (x, v, c, name) in enumerate(ends):
+        dy = (want[i] - y[i]) * 72.0 / fig.dpi
+        moved = abs(dy) > 0.5
+        ax.annotate(f"{v:.4g}", (x, v), xytext=(8, dy), textcoords="offset points",
+                    fontsize=fontsize, color=c, va="center", gid=f"end:{name}",
+                    arrowprops=dict(arrowstyle="-", color=c, lw=0.5,
+                                    shrinkA=0, shrinkB=1) if moved else None)
 
 
 # --------------------------------------------------------------------------------------

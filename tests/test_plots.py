@@ -309,8 +309,10 @@ def test_diagnostics_bounds_and_autocorrelation(replayed):
     # the normalised innovations of the fused readings, straight from the file
     dec = _decisions(replayed["track"])
     front = _names(replayed["track"], "direction_names").index("front")
-    m = (D.is_accepted(dec["decision"]) & (dec["direction"] == front) & np.isfinite(dec["nis"])
-         & np.isfinite(dec["innovation_m"]))
+    # NIS samples as the replay summary takes them: fused, finite NIS, not re-acquiring
+    # (docs/track-format.md: a re-acquiring reading's NIS is against the overturned track)
+    m = (D.is_accepted(dec["decision"]) & (dec["decision"] != D.REACQUIRED)
+         & (dec["direction"] == front) & np.isfinite(dec["nis"]))
     z = np.sign(dec["innovation_m"][m]) * np.sqrt(dec["nis"][m])
     n = z.size
     # whiteness bound +-1.96/sqrt(N) (Bar-Shalom, Li & Kirubarajan 2001, §5.4)
@@ -318,7 +320,9 @@ def test_diagnostics_bounds_and_autocorrelation(replayed):
     # sample autocorrelation r_k = sum (z_t - m)(z_t+k - m) / sum (z_t - m)^2 (Box & Jenkins
     # 1970, eq. 2.1.12); the streaming estimate differs only by end terms of order k/N
     zc = z - z.mean()
-    ref = np.array([np.dot(zc[:-k], zc[k:]) for k in range(1, 21)]) / np.dot(zc, zc)
+    lags = len(arts["acf:front"].get_ydata())
+    assert lags == 10        # the replay summary's Ljung-Box lags (replay.metrics.Whiteness)
+    ref = np.array([np.dot(zc[:-k], zc[k:]) for k in range(1, lags + 1)]) / np.dot(zc, zc)
     np.testing.assert_allclose(arts["acf:front"].get_ydata(), ref, atol=0.02)
     # NIS points: one per fused reading (below max_points)
     assert len(arts["nis:front"].get_xdata()) == n
@@ -337,7 +341,8 @@ def test_diagnostics_innovation_bounds_are_two_sqrt_s(replayed):
     arts = _by_gid(fig, "")
     dec = _decisions(replayed["track"])
     sensor = _names(replayed["track"], "sensor_names").index("echo_left")
-    m = D.is_accepted(dec["decision"]) & (dec["sensor"] == sensor) & (dec["nis"] > 0)
+    m = (D.is_accepted(dec["decision"]) & (dec["decision"] != D.REACQUIRED)
+         & (dec["sensor"] == sensor) & (dec["nis"] > 0))
     nu, nis = dec["innovation_m"][m], dec["nis"][m]
     # NIS = nu^2 / S, so sqrt(S) = |nu| / sqrt(NIS) (Bar-Shalom et al. 2001, eq. 5.4.2-8)
     upper = 2e3 * np.abs(nu) / np.sqrt(nis)
@@ -358,10 +363,123 @@ def test_running_mean_bounds_are_those_of_a_mean_of_w(replayed):
     assert arts["nisrunhi:left"].get_ydata()[0] == pytest.approx(chi2.ppf(0.975, w) / w)
     dec = _decisions(replayed["track"])
     left = _names(replayed["track"], "direction_names").index("left")
-    m = D.is_accepted(dec["decision"]) & (dec["direction"] == left) & np.isfinite(dec["nis"])
+    m = (D.is_accepted(dec["decision"]) & (dec["decision"] != D.REACQUIRED)
+         & (dec["direction"] == left) & np.isfinite(dec["nis"]))
     nis = dec["nis"][m]
     ref = np.convolve(nis, np.ones(w) / w, mode="valid")
     np.testing.assert_allclose(arts["nisrun:left"].get_ydata(), ref, rtol=1e-9)
+
+
+# --------------------------------------------------------------------------------------
+# The figures and the replay summary say the same thing (bundled demo logs)
+# --------------------------------------------------------------------------------------
+DATASETS = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "datasets")
+
+
+def _summary_numbers(text):
+    """Per direction: NIS mean, n, verdict, Ljung-Box p and the 'all' RMSE rows, as the
+    replay summary prints them."""
+    out, d, table = {}, None, None
+    for line in text.splitlines():
+        m = re.match(r"direction (\S+):", line)
+        if m:
+            d = m.group(1)
+            out[d] = {"rmse": {}}
+        m = re.match(r"\s+time-averaged NIS (\S+) over (\d+) fused readings; .*: (.+)$", line)
+        if m:
+            out[d].update(nis=m.group(1), n=int(m.group(2)), verdict=m.group(3))
+        m = re.search(r"Ljung-Box Q = \S+, p = (\S+)$", line)
+        if m:
+            out[d]["p"] = m.group(1)
+        m = re.match(r"\s+against truth \((\w+)\):", line)
+        if m:
+            table = m.group(1)
+        m = re.match(r"\s+all\s+(\d+)\s+(\S+)", line)
+        if m:
+            out[d]["rmse"][table] = (int(m.group(1)), m.group(2))
+    return out
+
+
+def test_figures_give_the_replay_summary_numbers(tmp_path):
+    # shelf-pass has re-acquisitions and crosstalk: the readings whose handling once made
+    # the figure say "too large" where the summary said "too small"
+    track = tmp_path / "sp.track.h5"
+    res = run(os.path.join(DATASETS, "shelf-pass.h5"), out=track, smooth=True)
+    want = _summary_numbers(res.summary())
+    assert set(want) == {"front", "left"}
+    dec = _decisions(track)
+    dirs = _names(track, "direction_names")
+    diag = plot_diagnostics(track)
+    figt = plot_track(track)
+    titles = [ax.get_title() for ax in diag.axes]
+    track_titles = [ax.get_title(loc="left") for ax in figt.axes]
+    for d, w in want.items():
+        # the time-averaged NIS straight from the decision rows (Bar-Shalom, Li &
+        # Kirubarajan 2001, §5.4: the mean of the NIS samples), re-acquisitions left out
+        m = ((dec["direction"] == dirs.index(d)) & D.is_accepted(dec["decision"])
+             & (dec["decision"] != D.REACQUIRED) & np.isfinite(dec["nis"]))
+        assert w["nis"] == f"{dec['nis'][m].mean():.3f}" and w["n"] == m.sum()
+        nis_title = [t for t in titles if t.startswith("time-averaged NIS")
+                     and f"over {w['n']:,} readings" in t]
+        assert len(nis_title) == 1, titles
+        assert nis_title[0].startswith(f"time-averaged NIS {w['nis']} over {w['n']:,} "
+                                       f"readings: {w['verdict']}\n"), nis_title[0]
+        white = [t for t in titles if t.startswith("whiteness") and f"p = {w['p']})" in t]
+        assert len(white) == 1, (w["p"], titles)
+        n_all, rmse = w["rmse"]["filtered"]
+        n_s, rmse_s = w["rmse"]["smoothed"]
+        bit = [t for t in track_titles if t.startswith(f"{d}:")][0]
+        assert f"RMSE against truth {rmse} mm over {n_all:,} readings" in bit, bit
+        assert f"(smoothed, at track rows: {rmse_s} mm)" in bit, bit
+    # and the summary's object, unrounded, against the figure's own accumulation. Not to
+    # the last bit: after a rejected reading the estimator's state can differ slightly
+    # from its last track row (a gated reading keeps low-weight updated hypotheses, an echo
+    # dropout reweights them), and the track file stores no state for rejected readings.
+    with export.TrackFile(track) as tf:
+        data = plots._collect_track(tf, tf.run(), tf.direction_names, -np.inf, np.inf, 1000)
+    for d in ("front", "left"):
+        np.testing.assert_allclose(data["dirs"][d]["errors"]["rmse_m"],
+                                   res.errors(d)["all"]["rmse_m"], rtol=1e-3)
+        assert data["dirs"][d]["errors"]["n"] == res.errors(d)["all"]["n"]
+
+
+def test_held_ir_readings_drawn_at_the_candidate_nearer_the_track(tmp_path):
+    track = tmp_path / "dock.track.h5"
+    run(os.path.join(DATASETS, "cold-store-dock.h5"), out=track)
+    fig = plot_track(track)
+    arts = _by_gid(fig, "")
+    held = arts["raw:front:ir_front:held"]
+    dec = _decisions(track)
+    names = _names(track, "sensor_names")
+    with h5py.File(track, "r") as f:
+        tt, tr = f["track/front/t_s"][:], f["track/front/range_m"][:]
+        truth_t, truth_r = f["truth/front/t_s"][:], f["truth/front/range_m"][:]
+    m = (dec["sensor"] == names.index("ir_front")) & (dec["decision"] == D.HELD)
+    t, zf, zn = dec["t_s"][m], dec["z_far_m"][m], dec["z_near_m"][m]
+    assert np.isfinite(zf).all() and np.isfinite(zn).all()   # below the peak: two candidates
+    # the candidate nearer the fused track, interpolated linearly between its rows
+    at = np.interp(t, tt, tr)
+    chosen = np.where(np.abs(zn - at) < np.abs(zf - at), zn, zf)
+    np.testing.assert_array_equal(held.get_xdata(), t)
+    np.testing.assert_array_equal(held.get_ydata(), chosen)
+    # 100-128 s the target sits at 0.08 m (the log's truth): the held readings are drawn
+    # there, not at their far candidate near 0.45 m
+    w = (t > 100) & (t < 128)
+    assert w.sum() > 100
+    truth_at = np.interp(t[w], truth_t, truth_r)
+    assert np.median(np.abs(np.asarray(held.get_ydata())[w] - truth_at)) < 0.02
+    assert np.median(zf[w] - truth_at) > 0.2        # ...where the old drawing put them
+    # held repeats are smaller than the fused readings and under the fused line
+    fused_dots = arts["raw:front:ir_front:fused"]
+    assert held.get_markersize() < fused_dots.get_markersize()
+    assert held.get_zorder() < arts["fused:front"].get_zorder()
+    assert held.get_zorder() < arts["truth:front"].get_zorder()
+    # the other candidate is drawn in the colour the legend gives it
+    other = arts["raw:front:ir_front:other"]
+    handle = [h for h in fig.legends[0].legend_handles if h.get_label() == "other IR candidate"]
+    assert len(handle) == 1
+    assert other.get_color() == handle[0].get_color()
+    assert other.get_alpha() == handle[0].get_alpha()
 
 
 # --------------------------------------------------------------------------------------
@@ -382,6 +500,16 @@ def test_convergence_figure(tmp_path):
     np.testing.assert_allclose(arts["loglik"].get_ydata(), [h["loglik"] for h in hist])
     np.testing.assert_allclose(arts["param:accel_psd"].get_ydata(),
                                [h["params"]["accel_psd"] for h in hist])
+    # every parameter named with its unit (accel_psd: a PSD of acceleration, m^2/s^3 for a
+    # 1-D constant-velocity model, Bar-Shalom et al. 2001 §6.2, from memory)
+    labels = [t.get_text() for t in ax_p.get_legend().get_texts()]
+    assert labels == ["accel_psd (m²/s³)", "echo_front.sigma_m (m)"]
+    # the end-of-line values do not overlap, and say the last value
+    fig.canvas.draw()
+    ends = [t for t in ax_p.texts if (t.get_gid() or "").startswith("end:")]
+    assert [t.get_text() for t in ends] == [f"{h:.4g}" for h in hist[-1]["params"].values()]
+    boxes = [t.get_window_extent() for t in ends]
+    assert not boxes[0].overlaps(boxes[1])
     with pytest.raises(InputError) as exc:
         plot_convergence([hist[0], {"iteration": 1, "params": {}}])
     assert exc.value.field == "history[1]" and "loglik" in str(exc.value)
