@@ -45,8 +45,6 @@ Using the curve: CURVE.toml holds a [curve] table and a [calibration] record of 
 fit. In a rig file the curve belongs to its sensor: copy the [curve] table below the IR
 ranger's [[sensor]] entry and rename its header to [sensor.curve] (docs/rig.md,
 "Curves"); leave [calibration] out of the rig.
-
-Fused ranges are not a safety-rated protective function.
 """
 
 USAGE_NOTE = ("to use it: copy its [curve] table into the rig file below the IR ranger's "

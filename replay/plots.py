@@ -1352,7 +1352,7 @@ def register(sub):
                     "follows the suffix of -o (.png, .pdf, .svg).",
         epilog="examples:\n  rangefuse plot dock.track.h5 -o dock.png\n"
                "  rangefuse plot dock.track.h5 -o dock-nis.png --kind diagnostics "
-               "--direction front --from 10 --to 70\n\n" + SAFETY_FOOTER,
+               "--direction front --from 10 --to 70",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("track", metavar="TRACK", help="track file (HDF5) from `rangefuse replay`")
     p.add_argument("-o", "--out", required=True, metavar="FIG",

@@ -43,8 +43,7 @@ def register(sub):
         epilog="The printed cycle_s is the rig's [schedule] cycle_s: the time between "
                "consecutive\npings (one slot), not the full round in which every unit "
                "fires once.\n\n"
-               "example:\n  rangefuse schedule datasets/shelf-pass.rig.toml --temp-min -20\n\n"
-               "Fused ranges are not a safety-rated protective function.",
+               "example:\n  rangefuse schedule datasets/shelf-pass.rig.toml --temp-min -20",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("rig", metavar="RIG", help="rig description (TOML)")
     p.add_argument("--temp-min", type=float, default=-10.0, metavar="C",

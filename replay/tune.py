@@ -643,8 +643,7 @@ def register(sub):
                     "one or more logs by maximising the innovations log-likelihood, or\n"
                     "from residuals against ground truth when the logs carry it.",
         epilog="example:\n  rangefuse tune datasets/tuning-run.h5 -o tuned.rig.toml "
-               "--objective innovations --plot tune.png\n\n"
-               "Fused ranges are not a safety-rated protective function.",
+               "--objective innovations --plot tune.png",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("logs", nargs="+", metavar="LOG",
                    help="log file(s) (HDF5) to tune on; several logs are fitted together, "

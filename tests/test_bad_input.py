@@ -575,6 +575,15 @@ def test_help_shows_an_example(capsys, command):
     assert exc.value.code == 0
     out = capsys.readouterr().out
     assert "example" in out.lower() and "rangefuse" in out
+    # every command says plainly that fused ranges are no protective function (the
+    # project's safety rule; wording checked whole, line breaks aside)
+    assert "not a safety-rated protective function: do not rely on them to protect people" \
+        in " ".join(out.split())
+
+
+def test_debug_is_accepted_after_the_command_too(capsys, tmp_path):
+    with pytest.raises(RangefuseError):
+        main(["replay", str(tmp_path / "none.h5"), "-o", str(tmp_path / "o.h5"), "--debug"])
 
 
 def test_every_error_type_is_the_project_family():

@@ -71,4 +71,4 @@ def test_help_explains_cycle_s_and_carries_the_caution(capsys):
     assert stop.value.code == 0
     text = capsys.readouterr().out
     assert "time between consecutive" in text and "example:" in text
-    assert "Fused ranges are not a safety-rated protective function." in text
+    assert "Fused ranges are not a safety-rated protective function: do not rely on them" in " ".join(text.split())
