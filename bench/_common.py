@@ -637,6 +637,7 @@ class FilterpyKalman:
         self.reacq_n = int(par[K.P_REACQ_N])
         self.reacq_w = par[K.P_REACQ_W]
         self.max_lag = par[K.P_MAX_LAG]
+        self.max_lead = par[K.P_MAX_LEAD]
         self.init_rate = par[K.P_INIT_RATE]
         self.merge_d2 = par[K.P_MERGE]
         self.vmax = par[K.P_VMAX]
@@ -652,6 +653,11 @@ class FilterpyKalman:
         self.rb = [[] for _ in range(nd)]          # rejected readings: (t, z0, z1, v0, v1)
         self.last_raw = [math.nan] * ns
         self.last_new_t = [-math.inf] * ns
+        self.last_t = [-math.inf] * ns
+        self.int_t = [math.nan] * ns
+        self.ahead = [0] * ns
+        self.leap = [0] * ns
+        self.t_src = [-1] * nd
         self._scratch = self._new_filter()
 
     def _new_filter(self):
@@ -684,47 +690,121 @@ class FilterpyKalman:
         return len(comps)
 
     def _reacq_check(self, d, t):
+        """`_kernels._reacq_check`: buffered entries are (t, z0, z1, v0, v1, sensor)."""
         buf = [e for e in self.rb[d] if t - e[0] <= self.reacq_w]
         self.rb[d] = buf
         n = len(buf)
         out = []
-        if n < self.reacq_n:
+        nfew = self.reacq_n // 2 + 1
+        if n < nfew:
             return out
         for anchor in range(2):
             a = buf[-1][1 + anchor]
             if math.isnan(a):
                 continue
-            zc, vc = [], []
+            sa = math.sqrt(buf[-1][3 + anchor])
+            story = []
             for e in buf:
                 z0, z1 = e[1], e[2]
                 best = 0
                 if math.isnan(z0) or (not math.isnan(z1) and abs(z1 - a) < abs(z0 - a)):
                     best = 1
-                zc.append(e[1 + best])
-                vc.append(e[3 + best])
+                zi, vi = e[1 + best], e[3 + best]
+                reach = 3.0 * (math.sqrt(vi) + sa) + 0.01 + 0.5 * (t - e[0])
+                if abs(zi - a) <= reach:
+                    story.append((e[0], zi, vi, e[5]))
+            several = any(x[3] != story[0][3] for x in story[1:])
+            if len(story) < (nfew if several else self.reacq_n):
+                continue
             sw = st = sz = 0.0
-            for e, z, v in zip(buf, zc, vc):
+            for tt, z, v, _s in story:
                 w = 1.0 / v
                 sw += w
-                st += w * (e[0] - t)
+                st += w * (tt - t)
                 sz += w * z
             tm, zm = st / sw, sz / sw
             stt = stz = 0.0
-            for e, z, v in zip(buf, zc, vc):
+            for tt, z, v, _s in story:
                 w = 1.0 / v
-                dt = e[0] - t - tm
+                dt = tt - t - tm
                 stt += w * dt * dt
                 stz += w * dt * (z - zm)
             slope = stz / stt if stt > 0 else 0.0
             ok = abs(slope) <= self.vmax
-            for e, z, v in zip(buf, zc, vc):
-                pred = zm + slope * (e[0] - t - tm)
+            for tt, z, v, _s in story:
+                pred = zm + slope * (tt - t - tm)
                 if abs(z - pred) > 3.0 * math.sqrt(v) + 0.01:
                     ok = False
                     break
             if ok:
                 out.append((zm + slope * (0.0 - tm), slope, 1.0 / sw))
         return out
+
+    def _keep_farther(self, d, t):
+        """`_kernels._keep_farther`: after an accepted reading keep only the buffered
+        readings beyond the track, inside the re-acquisition window."""
+        if not self.rb[d]:
+            return
+        m0, _m1, p00, _p01, _p11 = self._moments(self.comps[d])
+        keep = []
+        for e in self.rb[d]:
+            if t - e[0] > self.reacq_w:
+                continue
+            best = 0
+            if math.isnan(e[1]) or (not math.isnan(e[2]) and abs(e[2] - m0) < abs(e[1] - m0)):
+                best = 1
+            z = e[1 + best]
+            if not math.isnan(z) and z - m0 > 3.0 * math.sqrt(p00 + e[3 + best]):
+                keep.append(e)
+        self.rb[d] = keep
+
+    def _clock(self, code, d, s, t):
+        """`_kernels._clock`, line for line."""
+        if not (self.max_lead > 0.0) or math.isnan(t) or code == K.INVALID:
+            return code
+        ns = len(self.last_t)
+        prev = self.last_t[s]
+        leap = prev > -math.inf and t - prev > self.max_lead
+        if self.ahead[s] > 0:
+            due = -math.inf
+            for j in range(ns):
+                if j != s and self.ahead[j] == 0 and self.last_t[j] > -math.inf:
+                    iv = self.int_t[j] if not math.isnan(self.int_t[j]) else 0.0
+                    due = max(due, self.last_t[j] + iv)
+            if due == -math.inf or t - due <= self.max_lead:
+                self.ahead[s] = 0
+                self.leap[s] = 0
+            else:
+                self.ahead[s] += 1
+                if self.ahead[s] > K.AHEAD_ESCAPE:
+                    self.ahead[s] = 0
+                    self.leap[s] = 0
+        else:
+            src = self.t_src[d]
+            if (code == K.ACCEPTED and self.comps[d] and t < self.T[d] - self.max_lag
+                    and not leap and src >= 0 and src != s and self.leap[src]):
+                self.ahead[src] = 1
+                self.T[d] = t
+        if self.ahead[s] == 0:
+            if leap:
+                self.leap[s] = 1
+            else:
+                if prev > -math.inf and t > prev:
+                    dt = t - prev
+                    self.int_t[s] = dt if math.isnan(self.int_t[s]) else \
+                        0.9 * self.int_t[s] + 0.1 * dt
+                for j in range(ns):
+                    if j != s:
+                        if self.leap[j] and self.ahead[j] == 0 and t >= self.last_t[j] - self.max_lag:
+                            self.leap[j] = 0
+                        if self.ahead[j] > 0:
+                            self.ahead[j] = 1
+        self.last_t[s] = t
+        if self.ahead[s] > 0:
+            return K.CLOCK_AHEAD if code in (K.ACCEPTED, K.DROPOUT, K.OUT_OF_RANGE) else code
+        if code == K.ACCEPTED and t > self.T[d]:
+            self.t_src[d] = s
+        return code
 
     @staticmethod
     def _moments(comps):
@@ -784,6 +864,7 @@ class FilterpyKalman:
             branch = -1
             infl = 1.0
             comps = self.comps[d]
+            code = self._clock(code, d, s, t)
             if code == K.ACCEPTED:
                 if comps and t < self.T[d] - self.max_lag:
                     code = K.LATE
@@ -867,7 +948,7 @@ class FilterpyKalman:
                         buf = self.rb[d]
                         if len(buf) == K.RB:
                             buf.pop(0)
-                        buf.append((t, z[0], z[1], sg[0] * sg[0], sg[1] * sg[1]))
+                        buf.append((t, z[0], z[1], sg[0] * sg[0], sg[1] * sg[1], s))
                         ra = self._reacq_check(d, t)
                         if ra:
                             npass = len(ra)
@@ -955,7 +1036,7 @@ class FilterpyKalman:
                             innov = best_y
                             nis = best_nis
                         else:
-                            self.rb[d] = []
+                            self._keep_farther(d, t)
                             branch = 0 if pb0 >= pb1 else 1
                             bprob = (pb0 if branch == 0 else pb1) / (pb0 + pb1)
                             code = K.ACCEPTED if bprob >= amb else K.AMBIGUOUS

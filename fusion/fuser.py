@@ -350,6 +350,7 @@ class Fuser:
                      self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
                      st["T_SRC"], st["LAST_T"], st["INT_T"], st["AHEAD"], st["LEAP"],
+                     st["CLOCK_ODD"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
