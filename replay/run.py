@@ -620,6 +620,9 @@ def _smooth_track(g, q, truth, edges, ds, block=1_000_000):
         out[c] = g.create_dataset(c, shape=(n,), dtype=np.float64, chunks=(min(_CHUNK, n),),
                                   **_PLAIN)
         out[c].attrs["units"] = u
+    # Backwards, block by block; a re-acquired row starts a new track, so the rows before
+    # it are smoothed as the end of their own track (nothing after a restart says
+    # anything about the target before it).
     nxt = None
     stop = n
     while stop > 0:
@@ -630,14 +633,22 @@ def _smooth_track(g, q, truth, edges, ds, block=1_000_000):
         P[:, 0, 0] = g["cov_rr_m2"][start:stop]
         P[:, 0, 1] = P[:, 1, 0] = g["cov_rv_m2ps"][start:stop]
         P[:, 1, 1] = g["cov_vv_m2ps2"][start:stop]
-        xs, Ps = rts_smooth(t, x, P, q, nxt)
+        restart = np.flatnonzero((g["flags"][start:stop] & TRACK_REACQUIRED) != 0)
+        xs = np.empty_like(x)
+        Ps = np.empty_like(P)
+        hi = stop - start
+        for lo in list(restart[::-1]) + [0]:
+            if lo >= hi:
+                continue
+            xs[lo:hi], Ps[lo:hi] = rts_smooth(t[lo:hi], x[lo:hi], P[lo:hi], q, nxt)
+            nxt = None if lo in restart else (t[lo], xs[lo], Ps[lo])
+            hi = lo
         out["range_smoothed_m"][start:stop] = xs[:, 0]
         out["sigma_smoothed_m"][start:stop] = np.sqrt(Ps[:, 0, 0])
         out["rate_smoothed_mps"][start:stop] = xs[:, 1]
         if truth is not None:
             tr = _truth_interp(truth, t)
             ds.err_smooth.add(xs[:, 0] - tr, np.sqrt(Ps[:, 0, 0]), M.zone_of(tr, edges))
-        nxt = (t[0], xs[0], Ps[0])
         stop = start
 
 
