@@ -18,7 +18,7 @@ from fusion._chi2 import chi2_ppf, chi2_sf
 
 from fusion import decisions as D
 
-__all__ = ["ZONES", "zone_edges", "zone_of", "ErrorStats", "Whiteness", "nis_bounds",
+__all__ = ["ZONES", "zone_edges", "zone_of", "predict_range", "ErrorStats", "Whiteness", "nis_bounds",
            "consistency_verdict"]
 
 ZONES = ("near", "overlap", "far")
@@ -58,6 +58,16 @@ def consistency_verdict(mean, n, dof=1):
     if not np.isfinite(mean):
         return "n/a"
     return "consistent" if lo <= mean <= hi else ("too large" if mean > hi else "too small")
+
+
+def predict_range(range_m, rate_mps, cov_rr, cov_rv, cov_vv, dt_s, accel_psd):
+    """The track's range and its standard deviation predicted ``dt_s`` ahead under the
+    white-acceleration model (what a user reading the track at that instant holds):
+    ``r + v dt`` and ``sqrt(P00 + 2 dt P01 + dt^2 P11 + q dt^3 / 3)`` (Bar-Shalom, Li &
+    Kirubarajan 2001, sec. 6.2)."""
+    r = range_m + rate_mps * dt_s
+    var = cov_rr + 2 * dt_s * cov_rv + dt_s ** 2 * cov_vv + accel_psd * dt_s ** 3 / 3
+    return r, np.sqrt(var)
 
 
 @dataclass

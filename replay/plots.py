@@ -681,11 +681,11 @@ def _score_direction(tf, P, md, fused, t_meas, sel, q, d):
         seen = np.isfinite(tq) & np.isfinite(x0)
         dt = np.zeros(tq.size)
         dt[seen] = np.maximum(tq[seen] - blk["t_s"][j][seen], 0.0)
-        r_pred = x0 + blk["rate_mps"][j] * dt
-        v_pred = (blk["cov_rr_m2"][j] + 2 * dt * blk["cov_rv_m2ps"][j]
-                  + dt ** 2 * blk["cov_vv_m2ps2"][j] + q * dt ** 3 / 3)
         with np.errstate(invalid="ignore"):
-            P["err"].add(np.where(seen, r_pred - truth, np.nan), np.sqrt(v_pred),
+            r_pred, s_pred = M.predict_range(x0, blk["rate_mps"][j], blk["cov_rr_m2"][j],
+                                             blk["cov_rv_m2ps"][j], blk["cov_vv_m2ps2"][j],
+                                             dt, q)
+            P["err"].add(np.where(seen, r_pred - truth, np.nan), s_pred,
                          M.zone_of(truth, P["edges"]))
     return r_at
 

@@ -595,10 +595,9 @@ def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
         seen = np.isfinite(tm) & np.isfinite(xs[:, 0])
         dtp = np.zeros(len(im))
         dtp[seen] = np.maximum(tm[seen] - b.t_state_s[im][seen], 0.0)
-        r_pred = xs[:, 0] + xs[:, 1] * dtp
-        v_pred = (xs[:, 2] + 2 * dtp * xs[:, 3] + dtp ** 2 * xs[:, 4]
-                  + rig.estimator.accel_psd * dtp ** 3 / 3)
-        ds.err.add(np.where(seen, r_pred - trm, np.nan), np.sqrt(v_pred), zone)
+        r_pred, s_pred = M.predict_range(xs[:, 0], xs[:, 1], xs[:, 2], xs[:, 3], xs[:, 4], dtp,
+                                         rig.estimator.accel_psd)
+        ds.err.add(np.where(seen, r_pred - trm, np.nan), s_pred, zone)
         # branch correctness: IR readings below the peak (by truth) that were fused
         below = is_ir[im] & (trm < edges[d][0]) & acc[im] & (b.branch[im] >= 0)
         ds.branch_n += int(below.sum())
