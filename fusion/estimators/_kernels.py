@@ -150,6 +150,16 @@ def _init_track(d, z, sg, near_prior, init_rate, W, X, P, NH):
     return n
 
 
+@njit(cache=True, inline="always")
+def _move(d, i, j, RBT, RBZ, RBV, RBS):
+    """Entry ``i`` of direction ``d``'s re-acquisition buffer to slot ``j``."""
+    RBT[d, j] = RBT[d, i]
+    RBS[d, j] = RBS[d, i]
+    for c in range(2):
+        RBZ[d, j, c] = RBZ[d, i, c]
+        RBV[d, j, c] = RBV[d, i, c]
+
+
 @njit(cache=True)
 def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
     """Append a rejected reading (both candidates, and its sensor) to the direction's
@@ -157,11 +167,7 @@ def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
     m = RBN[d]
     if m == RB:
         for j in range(RB - 1):
-            RBT[d, j] = RBT[d, j + 1]
-            RBS[d, j] = RBS[d, j + 1]
-            for c in range(2):
-                RBZ[d, j, c] = RBZ[d, j + 1, c]
-                RBV[d, j, c] = RBV[d, j + 1, c]
+            _move(d, j + 1, j, RBT, RBZ, RBV, RBS)
         m = RB - 1
     RBT[d, m] = t
     RBS[d, m] = s
@@ -189,11 +195,7 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     j = 0
     for i in range(n):
         if t - RBT[d, i] <= window:
-            RBT[d, j] = RBT[d, i]
-            RBS[d, j] = RBS[d, i]
-            for c in range(2):
-                RBZ[d, j, c] = RBZ[d, i, c]
-                RBV[d, j, c] = RBV[d, i, c]
+            _move(d, i, j, RBT, RBZ, RBV, RBS)
             j += 1
     RBN[d] = j
     n = j
@@ -292,11 +294,7 @@ def _keep_farther(d, t, window, mean, var, RBT, RBZ, RBV, RBS, RBN):
             best = 1
         z = RBZ[d, i, best]
         if not math.isnan(z) and z - mean > 3.0 * math.sqrt(var + RBV[d, i, best]):
-            RBT[d, j] = RBT[d, i]
-            RBS[d, j] = RBS[d, i]
-            for c in range(2):
-                RBZ[d, j, c] = RBZ[d, i, c]
-                RBV[d, j, c] = RBV[d, i, c]
+            _move(d, i, j, RBT, RBZ, RBV, RBS)
             j += 1
     RBN[d] = j
 
