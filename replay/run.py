@@ -211,16 +211,19 @@ class ReplayResult:
         L.append("  " + f"{'sensor':<16}" + "".join(f"{names[c]:>13}" for c in used)
                  + f"{'mean NIS':>10}")
         for name, st in self.sensors.items():
-            mn = st.nis_sum / st.nis_n if st.nis_n else math.nan
+            mn = f"{st.nis_sum / st.nis_n:.2f}" if st.nis_n else "-"  # nothing fused
             L.append("  " + f"{name:<16}" + "".join(f"{int(st.counts[c]):>13}" for c in used)
-                     + f"{mn:>10.2f}")
+                     + f"{mn:>10}")
         for d in self.directions:
             st = self.dirs[d]
             L.append("")
             L.append(f"direction {d}:")
             mean, n, (lo, hi) = self.nis(d)
-            L.append(f"  time-averaged NIS {mean:.3f} over {n} fused readings; 95% bounds "
-                     f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
+            if n:
+                L.append(f"  time-averaged NIS {mean:.3f} over {n} fused readings; 95% bounds "
+                         f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
+            else:
+                L.append("  no reading was fused: no NIS to judge")
             w = st.white.result()
             if w["rho"]:
                 L.append(f"  innovation whiteness: lag-1..{len(w['rho'])} autocorrelation max "
