@@ -654,7 +654,6 @@ class FilterpyKalman:
         self.last_raw = [math.nan] * ns
         self.last_new_t = [-math.inf] * ns
         self.last_t = [-math.inf] * ns
-        self.int_t = [math.nan] * ns
         self.ahead = [0] * ns
         self.leap = [0] * ns
         self.t_src = [-1] * nd
@@ -740,65 +739,44 @@ class FilterpyKalman:
                 out.append((zm + slope * (0.0 - tm), slope, 1.0 / sw))
         return out
 
-    def _keep_farther(self, d, t):
-        """`_kernels._keep_farther`: after an accepted reading keep only the buffered
-        readings beyond the track, inside the re-acquisition window."""
-        if not self.rb[d]:
-            return
-        m0, _m1, p00, _p01, _p11 = self._moments(self.comps[d])
-        keep = []
-        for e in self.rb[d]:
-            if t - e[0] > self.reacq_w:
-                continue
-            best = 0
-            if math.isnan(e[1]) or (not math.isnan(e[2]) and abs(e[2] - m0) < abs(e[1] - m0)):
-                best = 1
-            z = e[1 + best]
-            if not math.isnan(z) and z - m0 > 3.0 * math.sqrt(p00 + e[3 + best]):
-                keep.append(e)
-        self.rb[d] = keep
-
     def _clock(self, code, d, s, t):
         """`_kernels._clock`, line for line."""
         if not (self.max_lead > 0.0) or math.isnan(t) or code == K.INVALID:
             return code
         ns = len(self.last_t)
         prev = self.last_t[s]
-        leap = prev > -math.inf and t - prev > self.max_lead
+        latest = -math.inf
+        for j in range(ns):
+            if j != s and self.ahead[j] == 0 and self.last_t[j] > latest:
+                latest = self.last_t[j]
+        leap = (prev > -math.inf and t - prev > self.max_lead and latest > -math.inf
+                and t - latest > self.max_lead)
         if self.ahead[s] > 0:
-            due = -math.inf
-            for j in range(ns):
-                if j != s and self.ahead[j] == 0 and self.last_t[j] > -math.inf:
-                    iv = self.int_t[j] if not math.isnan(self.int_t[j]) else 0.0
-                    due = max(due, self.last_t[j] + iv)
-            if due == -math.inf or t - due <= self.max_lead:
+            if latest >= t - self.max_lead:
                 self.ahead[s] = 0
                 self.leap[s] = 0
+                if self.t_src[d] == s and t < self.T[d]:
+                    self.T[d] = t
             else:
                 self.ahead[s] += 1
                 if self.ahead[s] > K.AHEAD_ESCAPE:
                     self.ahead[s] = 0
-                    self.leap[s] = 0
-        else:
-            src = self.t_src[d]
-            if (code == K.ACCEPTED and self.comps[d] and t < self.T[d] - self.max_lag
-                    and not leap and src >= 0 and src != s and self.leap[src]):
-                self.ahead[src] = 1
-                self.T[d] = t
+        elif not leap:
+            for j in range(ns):
+                if j != s and self.leap[j] and self.ahead[j] == 0:
+                    if t < self.last_t[j] - self.max_lag:
+                        self.ahead[j] = 1
+                        if self.t_src[d] == j and t < self.T[d]:
+                            self.T[d] = t
+                    else:
+                        self.leap[j] = 0
         if self.ahead[s] == 0:
             if leap:
                 self.leap[s] = 1
             else:
-                if prev > -math.inf and t > prev:
-                    dt = t - prev
-                    self.int_t[s] = dt if math.isnan(self.int_t[s]) else \
-                        0.9 * self.int_t[s] + 0.1 * dt
                 for j in range(ns):
-                    if j != s:
-                        if self.leap[j] and self.ahead[j] == 0 and t >= self.last_t[j] - self.max_lag:
-                            self.leap[j] = 0
-                        if self.ahead[j] > 0:
-                            self.ahead[j] = 1
+                    if j != s and self.ahead[j] > 0:
+                        self.ahead[j] = 1
         self.last_t[s] = t
         if self.ahead[s] > 0:
             return K.CLOCK_AHEAD if code in (K.ACCEPTED, K.DROPOUT, K.OUT_OF_RANGE) else code
@@ -1036,7 +1014,7 @@ class FilterpyKalman:
                             innov = best_y
                             nis = best_nis
                         else:
-                            self._keep_farther(d, t)
+                            self.rb[d] = []
                             branch = 0 if pb0 >= pb1 else 1
                             bprob = (pb0 if branch == 0 else pb1) / (pb0 + pb1)
                             code = K.ACCEPTED if bprob >= amb else K.AMBIGUOUS

@@ -1,8 +1,11 @@
 """The fuser: readings in, one decision per reading and a track per direction out.
 
 `Fuser` keeps the estimator state between calls. `Fuser.process` runs whole arrays of
-readings (a replay chunk); `Fuser.push` runs one reading through the same code, so the
-robot and the replay can never disagree.
+readings (a replay chunk, processed in stamp order); `Fuser.push` runs one reading
+through the same code, so readings pushed in stamp order get exactly the decisions a
+replay gives. (On the robot readings are pushed as they arrive; only a sensor whose
+clock jumps ahead makes the two orders differ, and only the pushed order can show it:
+decision ``clock_ahead``.)
 """
 from __future__ import annotations
 
@@ -349,7 +352,7 @@ class Fuser:
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
                      self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
-                     st["T_SRC"], st["LAST_T"], st["INT_T"], st["AHEAD"], st["LEAP"],
+                     st["T_SRC"], st["LAST_T"], st["AHEAD"], st["LEAP"],
                      st["CLOCK_ODD"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])

@@ -148,8 +148,9 @@ class EstimatorConfig:
         Readings older than the track by less than this are applied at the track time;
         older ones are rejected as late.
     max_lead_s : float
-        A reading stamped more than this ahead of every other sensor, by a forward jump
-        of its own clock, is decided ``clock_ahead`` (0 turns the check off).
+        A sensor whose stamps leap more than this ahead of every other sensor's is
+        checked for a jumped clock; readings of a clock shown to run ahead are decided
+        ``clock_ahead`` (0 turns the check off).
     particles : int
         Particle count for the particle estimator.
     resample_below : float

@@ -619,3 +619,54 @@ def test_clock_screen_is_the_same_pushed_in_stamp_order_and_in_a_batch():
     pushed = [f.push(n, t, raw)[1].code for _a, n, t, raw in ev]
     assert list(b.code) == pushed
     assert not np.any(b.code == D.CLOCK_AHEAD)
+
+
+@pytest.mark.parametrize("jump, echo_period", [(0.3, 0.2), (0.5, 0.4), (0.5, 0.05)])
+def test_a_jumped_clock_is_caught_whatever_the_partners_rate(jump, echo_period):
+    rig = _rig([_ir(), _echo()])
+    v, tof = float(CURVE.volts(0.40)), _tof(0.40)
+    events = [(t, "ir", t + (jump if 2.0 <= t < 4.0 else 0.0), v) for t in np.arange(0, 6, 0.02)]
+    events += [(t, "echo", t, tof) for t in np.arange(0.005, 6, echo_period)]
+    ev = sorted(events)
+    codes = _push_in_arrival_order(Fuser(rig), events)
+    echo_codes = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "echo"]
+    assert D.LATE not in echo_codes
+    ir_in = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and 2.0 + echo_period < a < 4.0]
+    assert np.mean(np.array(ir_in) == D.CLOCK_AHEAD) > 0.95
+    ir_after = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and a > 4.0 + echo_period]
+    assert D.CLOCK_AHEAD not in ir_after and D.LATE not in ir_after
+
+
+def test_a_sensor_alone_in_its_direction_is_caught_by_another_directions_sensor():
+    rig = _rig([_ir(direction="front"), _echo(direction="left")])
+    v, tof = float(CURVE.volts(0.40)), _tof(1.0)
+    events = [(t, "ir", t + (0.5 if 2.0 <= t < 4.0 else 0.0), v) for t in np.arange(0, 6, 0.02)]
+    events += [(t, "echo", t, tof) for t in np.arange(0.005, 6, 0.05)]
+    ev = sorted(events)
+    codes = _push_in_arrival_order(Fuser(rig), events)
+    ir_in = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and 2.1 < a < 4.0]
+    assert np.mean(np.array(ir_in) == D.CLOCK_AHEAD) > 0.95
+    # back in step, its own track's time label came back with it: nothing late
+    ir_after = [c for (a, n, _t, _r), c in zip(ev, codes) if n == "ir" and a > 4.1]
+    assert D.CLOCK_AHEAD not in ir_after and D.LATE not in ir_after
+
+
+def test_a_one_sensor_rig_never_marks_a_leap():
+    rig = _rig([_echo()])
+    t = np.r_[np.arange(0, 1, 0.05), np.arange(3, 4, 0.05)]
+    f = Fuser(rig)
+    b = f.process({"echo": (t, np.full(t.size, _tof(1.0)))})
+    assert not np.any(b.code == D.CLOCK_AHEAD)
+    assert f.state["CLOCK_ODD"][0] == 0
+
+
+def test_intermittent_farther_ghosts_do_not_take_the_track():
+    # A multipath ghost is a later echo of the same target (common practice, no source):
+    # every third reading at 2 m while the target stands at 1 m must not restart the
+    # track there (an accepted reading empties the re-acquisition buffer).
+    rig = _rig([_echo()])
+    t = np.arange(0, 4, 0.02)
+    r = np.where(np.arange(t.size) % 3 == 2, 2.0, 1.0)
+    b = Fuser(rig).process({"echo": (t, _tof(r))}).in_time_order()
+    assert not np.any(b.code == D.REACQUIRED)
+    assert np.mean(np.abs(b.state[:, 0] - 1.0) < 0.05) > 0.99

@@ -38,7 +38,7 @@ RB = 16  # re-acquisition buffer length per direction
 SUSPECT_OUTLIER_FACTOR = 100.0
 # A sensor stamped ahead stays `clock_ahead` while other sensors keep reporting; after this
 # many of its readings with no other sensor heard from, its clock is the only one left.
-AHEAD_ESCAPE = 20
+AHEAD_ESCAPE = 50
 # A track whose predicted range sigma would pass this has forgotten its target: it
 # restarts from the next reading instead of predicting across the gap (which, for an
 # absurd time step, overflows to an infinite covariance).
@@ -59,10 +59,10 @@ def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
         "RBV": np.zeros((n_dir, RB, 2)), "RBS": np.full((n_dir, RB), -1, np.int64),
         "RBN": np.zeros(n_dir, np.int64),
         "LAST_RAW": np.full(n_sensor, np.nan), "LAST_NEW_T": np.full(n_sensor, -np.inf),
-        # clock screening: each sensor's latest reading time, its usual interval, whether
-        # it is stamped ahead (0 no; k >= 1 its k-th reading since another spoke), and
-        # whether its clock leapt and no other sensor has confirmed the new time
-        "LAST_T": np.full(n_sensor, -np.inf), "INT_T": np.full(n_sensor, np.nan),
+        # clock screening: each sensor's latest reading time, whether it is stamped ahead
+        # (0 no; k >= 1 its k-th reading since another spoke), and whether its clock
+        # leapt and no other sensor has confirmed the new time
+        "LAST_T": np.full(n_sensor, -np.inf),
         "AHEAD": np.zeros(n_sensor, np.int64), "LEAP": np.zeros(n_sensor, np.int64),
         "CLOCK_ODD": np.zeros(1, np.int64),      # sensors marked leapt or ahead
         "T_SRC": np.full(n_dir, -1, np.int64),   # the sensor whose reading set T
@@ -268,98 +268,65 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     return npass
 
 
-@njit(cache=True, inline="always")
-def _keep_farther(d, t, window, mean, var, RBT, RBZ, RBV, RBS, RBN):
-    """After an accepted reading, forget the buffered rejected readings except those
-    beyond the track.
-
-    An accepted reading says the track is not lost — about the readings nearer than it:
-    an echo ranger hears the nearest reflector in its cone, so returns from something
-    nearer (clutter at the cone's edge, a passing object) come and go while the target
-    stays. Returns from beyond the track say more: the nearer thing the track may have
-    settled on is not always there. Those stay buffered across accepted readings, so a
-    track caught by intermittent clutter gets back to the target it hides (the beam
-    mixture's short component, Thrun, Burgard & Fox 2005, sec. 6.3, is the reason for
-    the asymmetry). Readings older than the re-acquisition `window` go too.
-    """
-    n = RBN[d]
-    j = 0
-    for i in range(n):
-        if t - RBT[d, i] > window:
-            continue
-        # the candidate nearest the track decides (an IR reading offers two)
-        best = 0
-        if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
-                                         abs(RBZ[d, i, 1] - mean) < abs(RBZ[d, i, 0] - mean)):
-            best = 1
-        z = RBZ[d, i, best]
-        if not math.isnan(z) and z - mean > 3.0 * math.sqrt(var + RBV[d, i, best]):
-            _move(d, i, j, RBT, RBZ, RBV, RBS)
-            j += 1
-    RBN[d] = j
-
-
 @njit(cache=True)
-def _clock(code, d, s, t, max_lead, max_lag, NH, T, T_SRC, LAST_T, INT_T, AHEAD, LEAP, ODD):
+def _clock(code, d, s, t, max_lead, max_lag, T, T_SRC, LAST_T, AHEAD, LEAP, ODD):
     """Catch a sensor whose clock jumped forward (one clock serves every sensor of a log).
 
-    A reading that leaps more than `max_lead` past its own sensor's previous one marks
-    that sensor as having leapt; a later reading of any other sensor at a time at or
-    after the leapt one's confirms the new time (the whole log had a gap). But when the
-    track's time was set by a leapt sensor and a reading of another sensor, keeping its
-    own cadence, arrives older than the track by more than `max_lag`, the leapt clock is
-    the wrong one: that sensor is marked ahead, the track's time label goes back to this
-    reading's (its state is made of real measurements, and predicting across the leap
-    only added process noise), and nothing is lost to ``late``. A sensor marked ahead is
-    decided ``clock_ahead`` until a reading of it falls within `max_lead` of when the
-    sensors in step are due to report next (their latest reading plus their usual
-    interval), or until `AHEAD_ESCAPE` of its readings pass with no other sensor heard
-    from (then its clock is the only one left).
+    A reading more than `max_lead` past both its own sensor's previous reading and the
+    latest reading of every other sensor marks its sensor as having leapt. A later
+    reading of another sensor at or after the leapt one's time confirms the new time
+    (the whole log had a gap). But a reading of another sensor, itself in step, stamped
+    more than `max_lag` behind the leapt sensor's latest shows that the leapt clock runs
+    ahead of the rest of the rig: that sensor is marked ahead, and where its readings
+    had set the track's time, the time label goes back to this reading's (the track is
+    made of real measurements; predicting across the leap only added process noise), so
+    nothing is lost to ``late``. A sensor marked ahead is decided ``clock_ahead`` until
+    the others catch up with its time (its clock came back: its own track's label goes
+    back with it), or until `AHEAD_ESCAPE` of its readings pass with no other sensor
+    heard from (then its clock is the only one left; it stays marked as leapt, to be
+    caught again if the others return behind it).
 
-    In time order (a batch, or readings pushed as they were stamped) no reading is late
-    behind a leap, so this only acts on readings pushed out of stamp order.
-    Returns the code (``CLOCK_AHEAD`` or unchanged); updates the clock state, and
+    In stamp order (a replay, or readings pushed as they were stamped) no reading is
+    behind a leap, so this acts only on readings pushed as they arrive on the robot.
+    Returns the code (``CLOCK_AHEAD`` or unchanged); updates the clock state and
     ``ODD[0]``, the number of sensors marked leapt or ahead.
     """
     if not (max_lead > 0.0) or math.isnan(t) or code == INVALID:
         return code
     ns = LAST_T.shape[0]
     prev = LAST_T[s]
-    leap = prev > -math.inf and t - prev > max_lead
+    latest = -math.inf  # the latest reading of the other sensors in step
+    for j in range(ns):
+        if j != s and AHEAD[j] == 0 and LAST_T[j] > latest:
+            latest = LAST_T[j]
+    leap = prev > -math.inf and t - prev > max_lead and latest > -math.inf \
+        and t - latest > max_lead
     if AHEAD[s] > 0:
-        due = -math.inf
-        for j in range(ns):
-            if j != s and AHEAD[j] == 0 and LAST_T[j] > -math.inf:
-                iv = INT_T[j] if not math.isnan(INT_T[j]) else 0.0
-                if LAST_T[j] + iv > due:
-                    due = LAST_T[j] + iv
-        if due == -math.inf or t - due <= max_lead:
-            AHEAD[s] = 0
+        if latest >= t - max_lead:
+            AHEAD[s] = 0  # back in step
             LEAP[s] = 0
+            if T_SRC[d] == s and t < T[d]:
+                T[d] = t
         else:
             AHEAD[s] += 1
             if AHEAD[s] > AHEAD_ESCAPE:
                 AHEAD[s] = 0
-                LEAP[s] = 0
-    else:
-        src = T_SRC[d]
-        if (code == ACCEPTED and NH[d] > 0 and t < T[d] - max_lag and not leap
-                and src >= 0 and src != s and LEAP[src] != 0):
-            AHEAD[src] = 1
-            T[d] = t
+    elif not leap:
+        for j in range(ns):
+            if j != s and LEAP[j] != 0 and AHEAD[j] == 0:
+                if t < LAST_T[j] - max_lag:
+                    AHEAD[j] = 1  # j's clock runs ahead of this in-step sensor's
+                    if T_SRC[d] == j and t < T[d]:
+                        T[d] = t
+                elif t >= LAST_T[j] - max_lag:
+                    LEAP[j] = 0   # confirmed: the others are at its time too
     if AHEAD[s] == 0:
         if leap:
             LEAP[s] = 1
         else:
-            if prev > -math.inf and t > prev:
-                dt = t - prev
-                INT_T[s] = dt if math.isnan(INT_T[s]) else 0.9 * INT_T[s] + 0.1 * dt
             for j in range(ns):
-                if j != s:
-                    if LEAP[j] != 0 and AHEAD[j] == 0 and t >= LAST_T[j] - max_lag:
-                        LEAP[j] = 0   # confirmed: the others are at its time too
-                    if AHEAD[j] > 0:
-                        AHEAD[j] = 1  # another sensor spoke: its escape count restarts
+                if j != s and AHEAD[j] > 0:
+                    AHEAD[j] = 1  # another sensor spoke: its escape count restarts
     LAST_T[s] = t
     odd = 0
     for j in range(ns):
@@ -377,7 +344,7 @@ def _clock(code, d, s, t, max_lead, max_lag, NH, T, T_SRC, LAST_T, INT_T, AHEAD,
 
 @njit(cache=True, inline="always")
 def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LAST_NEW_T,
-            max_lead, T_SRC, LAST_T, INT_T, AHEAD, LEAP, ODD):
+            max_lead, T_SRC, LAST_T, AHEAD, LEAP, ODD):
     """Per-reading screening: a clock that jumped ahead, late readings, held samples, and
     R inflation for an IR ranger sampled faster than it updates.
 
@@ -390,8 +357,7 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
     place.
     """
     infl = 1.0
-    code = _clock(code, d, s, t, max_lead, max_lag, NH, T, T_SRC, LAST_T, INT_T, AHEAD, LEAP,
-                  ODD)
+    code = _clock(code, d, s, t, max_lead, max_lag, T, T_SRC, LAST_T, AHEAD, LEAP, ODD)
     if code == ACCEPTED:
         if NH[d] > 0 and t < T[d] - max_lag:
             code = LATE
@@ -412,7 +378,7 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
                W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
-               T_SRC, LAST_T, INT_T, AHEAD, LEAP, CLOCK_ODD,
+               T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                o_nh, o_tt):
     """Run the Gaussian-sum Kalman estimator over events in the order `order`, in place.
@@ -470,14 +436,10 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
         # Clock screening (_clock). In step, the common case, it is three assignments, kept
         # here: a call per reading costs numba's reference counting of its arrays.
         if max_lead > 0.0 and code != INVALID and not math.isnan(t):
-            prev = LAST_T[s]
-            if (CLOCK_ODD[0] > 0 or t - prev > max_lead
-                    or (code == ACCEPTED and NH[d] > 0 and t < T[d] - max_lag)):
-                code = _clock(code, d, s, t, max_lead, max_lag, NH, T, T_SRC, LAST_T, INT_T,
-                              AHEAD, LEAP, CLOCK_ODD)
+            if CLOCK_ODD[0] > 0 or t - LAST_T[s] > max_lead:
+                code = _clock(code, d, s, t, max_lead, max_lag, T, T_SRC, LAST_T, AHEAD, LEAP,
+                              CLOCK_ODD)
             else:
-                if t > prev > -math.inf:
-                    INT_T[s] = t - prev if math.isnan(INT_T[s]) else 0.9 * INT_T[s] + 0.1 * (t - prev)
                 LAST_T[s] = t
                 if code == ACCEPTED and t > T[d]:
                     T_SRC[d] = s
@@ -666,10 +628,10 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         innov = best_y
                         nis = best_nis
                     else:
-                        if RBN[d] > 0:
-                            _moments(W[d], X[d], P[d], NH[d], mom)
-                            _keep_farther(d, t, reacq_w, mom[0], mom[2], RBT, RBZ, RBV, RBS,
-                                          RBN)
+                        # an accepted reading says the track is not lost: a restart needs
+                        # rejected readings with no confirmation between them (a real change
+                        # hides the old target; clutter and ghosts come and go)
+                        RBN[d] = 0
                         branch = 0 if pb0 >= pb1 else 1
                         bprob = (pb0 if branch == 0 else pb1) / (pb0 + pb1)
                         code = ACCEPTED if bprob >= amb else AMBIGUOUS

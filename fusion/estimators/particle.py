@@ -710,7 +710,7 @@ def _group(npart, npass):
 def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                  ev_volts, sens_kind, sens, grids, dir_split, par,
                  R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
-                 T_SRC, LAST_T, INT_T, AHEAD, LEAP, CLOCK_ODD,
+                 T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
                  o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                  o_nh, o_tt):
     """Run the particle estimator over events in the order `order`, in place.
@@ -763,8 +763,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
         # Screening shared with the Kalman kernel: late readings, held samples.
         code, flags, infl = K._screen(code, flags, d, s, t, ev_raw[i], is_ir, row[S_HOLD],
                                       max_lag, NH, T, LAST_RAW, LAST_NEW_T,
-                                      max_lead, T_SRC, LAST_T, INT_T, AHEAD, LEAP,
-                                      CLOCK_ODD)
+                                      max_lead, T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD)
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
         # As in the Kalman path: when another unit pinged while this one listened,
         # crosstalk is a far likelier explanation of a reading off the track.
@@ -837,10 +836,8 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                     _commit(d, W, WN, tot)
                     _summary(d, split_s, split_d, R, V, W, MOM, mass)
                     _modes(d, mass[1], has_split, amb, NH, PMAJ)
-                    # as in the Kalman path: keep only the rejected readings beyond the track
-                    if RBN[d] > 0:
-                        K._keep_farther(d, t, reacq_w, MOM[d, 0], MOM[d, 2], RBT, RBZ, RBV,
-                                        RBS, RBN)
+                    # as in the Kalman path: an accepted reading says the track is not lost
+                    RBN[d] = 0
                     if is_ir:
                         p_near = mass[0]
                         branch = 1 if p_near >= 0.5 else 0
@@ -917,7 +914,7 @@ def new_state(n_dir: int, n_sensor: int, n_particles: int, seed: int = 0) -> dic
     # The screening and re-acquisition buffers are the Kalman kernel's, shapes and all.
     kal = K.new_state(n_dir, n_sensor, 1)
     for key in ("RBT", "RBZ", "RBV", "RBS", "RBN", "LAST_RAW", "LAST_NEW_T", "T_SRC", "LAST_T",
-                "INT_T", "AHEAD", "LEAP", "CLOCK_ODD"):
+                "AHEAD", "LEAP", "CLOCK_ODD"):
         st[key] = kal[key]
     return st
 
@@ -1051,7 +1048,7 @@ class ParticleFuser(Fuser):
                      self._kind, self._sens, self._grids, self._dir_split, self._ppar,
                      st["R"], st["V"], st["W"], st["NH"], st["T"], st["MOM"], st["PMAJ"],
                      st["RNG"], st["RBT"], st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"],
-                     st["LAST_NEW_T"], st["T_SRC"], st["LAST_T"], st["INT_T"], st["AHEAD"],
+                     st["LAST_NEW_T"], st["T_SRC"], st["LAST_T"], st["AHEAD"],
                      st["LEAP"], st["CLOCK_ODD"], out["code"],
                      out["flags"], out["innov"], out["nis"],
                      out["branch"], out["bprob"], out["ll"], track, out["pmaj"], out["nh"],
