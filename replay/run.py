@@ -695,19 +695,29 @@ def _main(args) -> int:
     if args.plot:
         figs = [args.plot] if len(outs) == 1 else \
             [os.path.splitext(o)[0] + os.path.splitext(args.plot)[1] for o in outs]
+    if len(set(map(os.path.abspath, outs))) < len(outs):
+        raise InputError("two logs have the same file name, so their track files would "
+                         "collide in the folder; replay them separately", file=args.out,
+                         field="-o")
     # Every output is checked before any work: a bad --plot must not cost a whole replay
-    # and leave the track file behind.
+    # and leave the track file behind (nor an empty folder made for it).
+    made = len(outs) > 1 and not os.path.isdir(args.out)
     if len(outs) > 1:
         os.makedirs(args.out, exist_ok=True)
-    for out, fig in zip(outs, figs):
-        check_output(out, args.logs + extra, field="-o")
-        if fig is not None:
-            check_output(fig, args.logs + extra + [out], field="--plot",
-                         suffixes=FIGURE_SUFFIXES)
-        if args.csv:
-            from .export import csv_prefix
-            for end in (".track.csv", ".decisions.csv"):
-                check_output(csv_prefix(out) + end, args.logs + extra, field="--csv")
+    try:
+        for out, fig in zip(outs, figs):
+            check_output(out, args.logs + extra, field="-o")
+            if fig is not None:
+                check_output(fig, args.logs + extra + [out], field="--plot",
+                             suffixes=FIGURE_SUFFIXES)
+            if args.csv:
+                from .export import csv_prefix
+                for end in (".track.csv", ".decisions.csv"):
+                    check_output(csv_prefix(out) + end, args.logs + extra, field="--csv")
+    except InputError:
+        if made:
+            os.rmdir(args.out)
+        raise
     for log, out, fig in zip(args.logs, outs, figs):
         res = run(log, rig=args.rig, out=out, smooth=args.smooth, window_s=args.window,
                   progress=sys.stderr.isatty(), inputs_extra=extra)
