@@ -24,8 +24,10 @@ DEMO_NOTES = {
         "Reading this run: a person (24 s) and a trolley (70 s) step into the front beam; "
         "the track re-acquires within about 60 ms, which is where the 2.5 m worst error "
         "and the large NEES come from. From 100 s to 108 s a shelf upright at the edge of "
-        "the front echo cone returns half the pings and draws the track for about 3 s in "
-        "all. Crosstalk between the two free-running echo rangers is told by ping timing."),
+        "the front echo cone returns half the pings and holds the track for most of that "
+        "time: to an echo ranger alone, a reflector that answers half the pings is "
+        "indistinguishable from something that stepped in. Crosstalk between the two "
+        "free-running echo rangers is told by ping timing."),
     "tuning-run": (
         "Reading this run: this log is for `rangefuse tune`. Its rig leaves the process "
         "noise at the default first guess, so the NIS is below its bounds and the "
