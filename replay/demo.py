@@ -25,8 +25,8 @@ DEMO_NOTES = {
         "the track re-acquires within about 60 ms, which is where the 2.5 m worst error "
         "and the large NEES come from. From 100 s to 108 s a shelf upright at the edge of "
         "the front echo cone returns half the pings and holds the track for most of that "
-        "time: to an echo ranger alone, a reflector that answers half the pings is "
-        "indistinguishable from something that stepped in. Crosstalk between the two "
+        "time: to an echo ranger alone, five of its echoes in a row look like something "
+        "stepping in, and the way back needs five of the target's. Crosstalk between the two "
         "free-running echo rangers is told by ping timing."),
     "tuning-run": (
         "Reading this run: this log is for `rangefuse tune`. Its rig leaves the process "
