@@ -20,7 +20,7 @@ from .estimators import _kernels as K
 from .measurements import Measurements
 from .noise import echo_mixture
 from .rig import Rig
-from .screening import (air_at, classify_crosstalk, raw_noise, repeat_probability,
+from .screening import (_T_MAX_C, _T_MIN_C, air_at, classify_crosstalk, raw_noise, repeat_probability,
                         stuck_limit, stuck_readings)
 from .sensors.air import speed_of_sound
 from ._chi2 import chi2_ppf
@@ -188,42 +188,57 @@ class Fuser:
         self._air_v = np.zeros(0)
         self._rh_t = np.zeros(0)
         self._rh_v = np.zeros(0)
+        self._first_air = math.nan  # the first good air sample (a unit's power-up air)
         self._pings = [(np.zeros(0), np.zeros(0), np.zeros(0, np.int64)) if k == K.KIND_ECHO
                        else (None, None, None) for k in self._kind]
 
     # --- environment -------------------------------------------------------------
+    # Only usable samples are kept (a failed one carries no value; the staleness of the
+    # last good one is what the decode needs), and samples far older than the readings
+    # being decoded are dropped, so streaming for days keeps push cheap and memory flat.
     def push_air(self, t_s, temp_c) -> None:
         """Add air-temperature samples (degC); NaN marks a failed sample."""
         t_s, temp_c = np.atleast_1d(np.asarray(t_s, float)), np.atleast_1d(np.asarray(temp_c, float))
+        good = _good_air(t_s, temp_c)
+        t_s, temp_c = t_s[good], temp_c[good]
+        if t_s.size and not np.isfinite(self._first_air):
+            self._first_air = float(temp_c[np.argmin(t_s)])
         self._air_t, self._air_v = _append_sorted(self._air_t, self._air_v, t_s, temp_c)
 
     def push_humidity(self, t_s, relative_humidity) -> None:
         """Add relative-humidity samples (fraction 0..1)."""
         t_s = np.atleast_1d(np.asarray(t_s, float))
         rh = np.atleast_1d(np.asarray(relative_humidity, float))
-        self._rh_t, self._rh_v = _append_sorted(self._rh_t, self._rh_v, t_s, rh)
+        good = np.isfinite(t_s) & np.isfinite(rh) & (rh >= 0) & (rh <= 1)
+        self._rh_t, self._rh_v = _append_sorted(self._rh_t, self._rh_v, t_s[good], rh[good])
+
+    def _forget_environment_before(self, t_s) -> None:
+        """Drop samples no reading from `t_s` - `_ENV_KEEP_S` on can use (the last one
+        before that stays: it is the value then)."""
+        cut = t_s - _ENV_KEEP_S
+        for t_name, v_name in (("_air_t", "_air_v"), ("_rh_t", "_rh_v")):
+            t = getattr(self, t_name)
+            j = int(np.searchsorted(t, cut, side="right")) - 1
+            if j > 0:
+                setattr(self, t_name, t[j:])
+                setattr(self, v_name, getattr(self, v_name)[j:])
 
     def _humidity_at(self, t):
         air = self.rig.air
         if not air.humidity_stream or self._rh_t.size == 0:
             return np.full(t.shape, air.relative_humidity)
-        good = np.isfinite(self._rh_v) & (self._rh_v >= 0) & (self._rh_v <= 1)
-        rt, rv = self._rh_t[good], self._rh_v[good]
-        if rt.size == 0:
-            return np.full(t.shape, air.relative_humidity)
-        j = np.searchsorted(rt, t, side="right") - 1
-        return np.where(j >= 0, rv[np.maximum(j, 0)], air.relative_humidity)
+        j = np.searchsorted(self._rh_t, t, side="right") - 1
+        return np.where(j >= 0, self._rh_v[np.maximum(j, 0)], air.relative_humidity)
 
     def _power_up_temp(self):
-        good = np.isfinite(self._air_v) & (self._air_v > -60) & (self._air_v < 90)
-        return float(self._air_v[good][0]) if good.any() else self.rig.air.fallback_temp_c
+        return self._first_air if np.isfinite(self._first_air) else self.rig.air.fallback_temp_c
 
     # --- readings ----------------------------------------------------------------
     def decode(self, name: str, t_s, raw, ping_t_s=None) -> tuple[Measurements, np.ndarray]:
         """Decode one sensor's readings; returns measurements and the temperature used."""
         s = self.rig.sensors[name]
         t_s = np.asarray(t_s, dtype=float)
-        temp, tsig, fb = air_at(t_s, self._air_t, self._air_v, self.rig.air)
+        temp, tsig, fb = air_at(t_s, self._air_t, self._air_v, self.rig.air, clean=True)
         if s.kind == "echo":
             rh = self._humidity_at(t_s)
             pu = getattr(s, "power_up_temp_c", math.nan)
@@ -311,6 +326,9 @@ class Fuser:
         code[bad_t] = D.INVALID
         order = _processing_order(sensor, t_meas, ping)
         self._screen_crosstalk(sensor, ping, tof, code, flags, _rank_of(order))
+        fin = t_s[np.isfinite(t_s)]
+        if fin.size:
+            self._forget_environment_before(float(fin.min()))
         # The order is kept with the times it was computed from: a caller that hands
         # run_prepared other times (the tuner shifting latencies) gets a fresh sort.
         return dict(sensor=sensor, row=row, t_s=t_s, t_meas=t_meas, z=z, sg=sg, code=code,
@@ -464,6 +482,13 @@ def _rank_of(order):
     rank = np.empty(len(order), np.int64)
     rank[order] = np.arange(len(order))
     return rank
+
+
+_ENV_KEEP_S = 60.0  # readings this much older than a batch's earliest get the fallback air
+
+
+def _good_air(t_s, temp_c):
+    return np.isfinite(t_s) & np.isfinite(temp_c) & (temp_c > _T_MIN_C) & (temp_c < _T_MAX_C)
 
 
 def _append_sorted(t0, v0, t1, v1):

@@ -19,7 +19,7 @@ _T_MIN_C, _T_MAX_C = -60.0, 90.0
 PREDICT_WINDOW_S = 0.5
 
 
-def air_at(t_s, sample_t_s, sample_temp_c, air):
+def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False):
     """Air temperature at reading times, causally (the last good sample before each).
 
     Parameters
@@ -29,6 +29,8 @@ def air_at(t_s, sample_t_s, sample_temp_c, air):
     sample_t_s, sample_temp_c : (m,) arrays
         Temperature stream; NaN, infinite and implausible samples count as failures.
     air : fusion.rig.AirConfig
+    clean : bool
+        The samples are already sorted, with only usable ones (skips the check).
 
     Returns
     -------
@@ -39,8 +41,9 @@ def air_at(t_s, sample_t_s, sample_temp_c, air):
     t_s = np.asarray(t_s, dtype=float)
     st = np.asarray(sample_t_s, dtype=float)
     sv = np.asarray(sample_temp_c, dtype=float)
-    good = np.isfinite(st) & np.isfinite(sv) & (sv > _T_MIN_C) & (sv < _T_MAX_C)
-    st, sv = st[good], sv[good]
+    if not clean:
+        good = np.isfinite(st) & np.isfinite(sv) & (sv > _T_MIN_C) & (sv < _T_MAX_C)
+        st, sv = st[good], sv[good]
     temp = np.full(t_s.shape, air.fallback_temp_c)
     sigma = np.full(t_s.shape, air.fallback_sigma_c)
     if not air.stream:  # no stream configured: the configured value is the design, not a fault
@@ -53,7 +56,11 @@ def air_at(t_s, sample_t_s, sample_temp_c, air):
         age = t_s - st[jj]
         temp = np.where(have, sv[jj], temp)
         stale = np.maximum(age - air.stale_after_s, 0.0)
-        sigma = np.where(have, air.temp_sigma_c + air.stale_growth_c_per_s * stale, sigma)
+        grown = air.temp_sigma_c + air.stale_growth_c_per_s * stale
+        # a stale sample is never worth less than no sample at all (the fallback sigma)
+        if air.fallback_sigma_c > 0:
+            grown = np.minimum(grown, max(air.fallback_sigma_c, air.temp_sigma_c))
+        sigma = np.where(have, grown, sigma)
         fallback = ~have | (age > air.stale_after_s)
     return temp, sigma, fallback
 

@@ -670,3 +670,24 @@ def test_intermittent_farther_ghosts_do_not_take_the_track():
     b = Fuser(rig).process({"echo": (t, _tof(r))}).in_time_order()
     assert not np.any(b.code == D.REACQUIRED)
     assert np.mean(np.abs(b.state[:, 0] - 1.0) < 0.05) > 0.99
+
+
+def test_streaming_for_hours_keeps_the_air_history_bounded():
+    # Pushing an air sample every 0.5 s and readings between them for three hours must
+    # not grow the fuser's memory (a robot runs for days), and each reading still gets
+    # the last good sample before it (failed samples are not kept: they carry no value).
+    rig = Rig.from_dict({"air": {"stream": "air", "fallback_temp_c": 20.0},
+                         "sensor": [_echo()]})
+    f = Fuser(rig)
+    sizes = []
+    for k in range(0, 3 * 3600 * 2, 50):        # 25 s blocks
+        ta = k * 0.5 + 0.5 * np.arange(50)
+        va = 15.0 + 0.001 * ta
+        va[7] = np.nan                               # a failed sample
+        f.push_air(ta, va)
+        tr = ta + 0.25
+        b = f.process({"echo": (tr, np.full(tr.size, _tof(1.0)))})
+        sizes.append(f._air_t.size)
+        assert np.allclose(b.temp_c, va[np.where(np.isfinite(va), np.arange(50),
+                                                 np.arange(50) - 1)])
+    assert max(sizes) <= 2 * 60 / 0.5 + 60   # about the last minute and one block

@@ -409,6 +409,13 @@ class EchoRanger:
 
             sigma = np.sqrt(self.sigma_m ** 2 + (self.sigma_frac * r_sensor) ** 2
                             + (quantum / _SQRT12) ** 2 + (dr_dt * temp_sigma) ** 2)
+            # a range whose uncertainty overflowed (an absurd time, a hopeless air
+            # sample) says nothing: it must not reach the estimator
+            lost = ~unusable & ~np.isfinite(sigma)
+            if lost.any():
+                bad |= lost
+                unusable = bad | dropout
+                code[lost] = D.INVALID
             z = np.full((n, 2), np.nan)
             s = np.full((n, 2), np.nan)
             z[:, 0] = np.where(unusable, np.nan, r_sensor + self.offset_m)
