@@ -588,13 +588,8 @@ def read_all(path: str):
     from replay.logfile import open_log
     with open_log(path) as log:
         rig = Rig.from_toml(log.rig_toml, where=path)
-        readings = {}
-        for name in log.sensors:
-            s = log.read_sensor(name)
-            readings[name] = (s.t_s, s.raw, s.ping_t_s)
-        env = {}
-        if rig.air.stream and rig.air.stream in log.environments:
-            env["air"] = log.environment(rig.air.stream)
+        readings = log.readings()
+        env = log.environment_for(rig)
         truth = {d: log.truth(d) for d in rig.directions}
     return rig, readings, env, truth
 

@@ -747,6 +747,24 @@ class LogFile:
         where = f"/environment/{name}"
         return self._read(f"{where}/t_s"), self._read(f"{where}/value")
 
+    def environment_for(self, rig) -> dict:
+        """The streams `rig` reads its air from, as `fusion.Fuser.prepare` takes them:
+        ``{"air": (t_s, temp_c), "humidity": (t_s, rh)}``, each only if the log has it."""
+        env = {}
+        for key, stream in (("air", rig.air.stream), ("humidity", rig.air.humidity_stream)):
+            if stream and stream in self.environments:
+                env[key] = self.environment(stream)
+        return env
+
+    def readings(self) -> dict:
+        """Every reading of every sensor, as `fusion.Fuser.prepare` takes them:
+        ``{name: (t_s, raw, ping_t_s)}`` (the whole log in memory; replay reads windows)."""
+        out = {}
+        for name in self.sensors:
+            s = self.read_sensor(name)
+            out[name] = (s.t_s, s.raw, s.ping_t_s)
+        return out
+
     def read_dataset(self, field: str, start: int = 0, stop: int | None = None) -> np.ndarray:
         """Rows ``start:stop`` of any 1-D dataset by its path (e.g. ``"/truth/front/t_s"``)."""
         ds = None if self._f is None else self._f.get(field)

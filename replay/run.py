@@ -475,12 +475,7 @@ def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
     fuser = make_fuser(rig)
     names = fuser.sensor_names
     dirs = fuser.directions
-    env = {}
-    if rig.air.stream:
-        if rig.air.stream in log.environments:
-            env["air"] = log.environment(rig.air.stream)
-    if rig.air.humidity_stream and rig.air.humidity_stream in log.environments:
-        env["humidity"] = log.environment(rig.air.humidity_stream)
+    env = log.environment_for(rig)
     # The environment is small next to the readings: hand it over once, causally used.
     if "air" in env:
         fuser.push_air(*env["air"])

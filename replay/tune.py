@@ -177,16 +177,7 @@ class _Problem:
             with open_log(path) as log:
                 _rig_for(log, rig, path)
                 f = Fuser(rig)
-                readings = {}
-                for name in log.sensors:
-                    s = log.read_sensor(name)
-                    readings[name] = (s.t_s, s.raw, s.ping_t_s)
-                env = {}
-                if rig.air.stream and rig.air.stream in log.environments:
-                    env["air"] = log.environment(rig.air.stream)
-                if rig.air.humidity_stream and rig.air.humidity_stream in log.environments:
-                    env["humidity"] = log.environment(rig.air.humidity_stream)
-                prep = f.prepare(readings, env)
+                prep = f.prepare(log.readings(), log.environment_for(rig))
                 if prep is None:
                     continue
                 self.preps.append(prep)
