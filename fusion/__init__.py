@@ -15,7 +15,7 @@ __version__ = "0.1.0"
 
 _LAZY = {
     "Rig": ".rig", "AirConfig": ".rig", "EstimatorConfig": ".rig", "ScheduleConfig": ".rig",
-    "Fuser": ".fuser", "Estimate": ".fuser", "Decision": ".fuser", "StepBatch": ".fuser",
+    "Fuser": ".fuser", "make_fuser": ".fuser", "Estimate": ".fuser", "Decision": ".fuser", "StepBatch": ".fuser",
     "TriangulationCurve": ".sensors.triangulation", "TriangulationRanger": ".sensors.ir",
     "EchoRanger": ".sensors.echo", "RangeGaussian": ".noise", "VoltageGaussian": ".noise",
     "BeamMixture": ".noise", "rts_smooth": ".estimators.smoother",

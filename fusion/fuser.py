@@ -25,7 +25,16 @@ from .screening import (_T_MAX_C, _T_MIN_C, air_at, classify_crosstalk, raw_nois
 from .sensors.air import speed_of_sound
 from ._chi2 import chi2_ppf
 
-__all__ = ["Fuser", "Estimate", "Decision", "StepBatch"]
+__all__ = ["Fuser", "Estimate", "Decision", "StepBatch", "make_fuser"]
+
+
+def make_fuser(rig: Rig):
+    """The fuser the rig's ``[estimator] kind`` asks for: `Fuser` (Kalman) or
+    `fusion.estimators.particle.ParticleFuser`; both have the same interface."""
+    if rig.estimator.kind == "particle":
+        from .estimators.particle import ParticleFuser
+        return ParticleFuser(rig)
+    return Fuser(rig)
 
 _PING_MEMORY_S = 1.0
 _CROSSTALK_TOL_S = 2.5e-4  # about 4 cm of two-way path
@@ -154,8 +163,8 @@ class Fuser:
     #: The ``estimator.kind`` this class runs; a subclass with another engine (the
     #: particle estimator) overrides it, its message and `_kernel`.
     estimator_kind = "kalman"
-    _kind_hint = ("Fuser runs the Kalman estimator; use "
-                  "fusion.estimators.particle.ParticleFuser for kind='particle'")
+    _kind_hint = ("Fuser runs the Kalman estimator; fusion.make_fuser(rig) builds the one "
+                  "the rig asks for (ParticleFuser for kind='particle')")
 
     def __init__(self, rig: Rig):
         if rig.estimator.kind != self.estimator_kind:
@@ -189,6 +198,7 @@ class Fuser:
         self._rh_t = np.zeros(0)
         self._rh_v = np.zeros(0)
         self._first_air = math.nan  # the first good air sample (a unit's power-up air)
+        self._air_pushed = self._rh_pushed = False
         self._pings = [(np.zeros(0), np.zeros(0), np.zeros(0, np.int64)) if k == K.KIND_ECHO
                        else (None, None, None) for k in self._kind]
 
@@ -197,8 +207,21 @@ class Fuser:
     # last good one is what the decode needs), and samples far older than the readings
     # being decoded are dropped, so streaming for days keeps push cheap and memory flat.
     def push_air(self, t_s, temp_c) -> None:
-        """Add air-temperature samples (degC); NaN marks a failed sample."""
-        t_s, temp_c = np.atleast_1d(np.asarray(t_s, float)), np.atleast_1d(np.asarray(temp_c, float))
+        """Add air-temperature samples, degC (not kelvin); NaN, and a value outside
+        -60..90 degC, marks a failed sample.
+
+        Pushed samples are used whether or not the rig names an ``[air] stream`` (that
+        name only says which stream of a log to replay).
+        """
+        try:
+            t_s = np.atleast_1d(np.asarray(t_s, float))
+            temp_c = np.atleast_1d(np.asarray(temp_c, float))
+        except (TypeError, ValueError):
+            raise InputError("expected numbers (t_s, temp_c)", field="push_air") from None
+        if t_s.shape != temp_c.shape or t_s.ndim != 1:
+            raise InputError(f"t_s has {t_s.size} values but temp_c has {temp_c.size}; "
+                             "expected 1-D arrays of one length", field="push_air")
+        self._air_pushed = True
         good = _good_air(t_s, temp_c)
         t_s, temp_c = t_s[good], temp_c[good]
         if t_s.size and not np.isfinite(self._first_air):
@@ -206,9 +229,18 @@ class Fuser:
         self._air_t, self._air_v = _append_sorted(self._air_t, self._air_v, t_s, temp_c)
 
     def push_humidity(self, t_s, relative_humidity) -> None:
-        """Add relative-humidity samples (fraction 0..1)."""
-        t_s = np.atleast_1d(np.asarray(t_s, float))
-        rh = np.atleast_1d(np.asarray(relative_humidity, float))
+        """Add relative-humidity samples (fraction 0..1; others count as failed), used
+        whether or not the rig names an ``[air] humidity_stream``."""
+        try:
+            t_s = np.atleast_1d(np.asarray(t_s, float))
+            rh = np.atleast_1d(np.asarray(relative_humidity, float))
+        except (TypeError, ValueError):
+            raise InputError("expected numbers (t_s, relative_humidity)",
+                             field="push_humidity") from None
+        if t_s.shape != rh.shape or t_s.ndim != 1:
+            raise InputError(f"t_s has {t_s.size} values but relative_humidity has {rh.size}; "
+                             "expected 1-D arrays of one length", field="push_humidity")
+        self._rh_pushed = True
         good = np.isfinite(t_s) & np.isfinite(rh) & (rh >= 0) & (rh <= 1)
         self._rh_t, self._rh_v = _append_sorted(self._rh_t, self._rh_v, t_s[good], rh[good])
 
@@ -225,7 +257,7 @@ class Fuser:
 
     def _humidity_at(self, t):
         air = self.rig.air
-        if not air.humidity_stream or self._rh_t.size == 0:
+        if not (air.humidity_stream or self._rh_pushed) or self._rh_t.size == 0:
             return np.full(t.shape, air.relative_humidity)
         j = np.searchsorted(self._rh_t, t, side="right") - 1
         return np.where(j >= 0, self._rh_v[np.maximum(j, 0)], air.relative_humidity)
@@ -238,7 +270,8 @@ class Fuser:
         """Decode one sensor's readings; returns measurements and the temperature used."""
         s = self.rig.sensors[name]
         t_s = np.asarray(t_s, dtype=float)
-        temp, tsig, fb = air_at(t_s, self._air_t, self._air_v, self.rig.air, clean=True)
+        temp, tsig, fb = air_at(t_s, self._air_t, self._air_v, self.rig.air, clean=True,
+                                streamed=bool(self.rig.air.stream) or self._air_pushed)
         if s.kind == "echo":
             rh = self._humidity_at(t_s)
             pu = getattr(s, "power_up_temp_c", math.nan)
@@ -269,15 +302,26 @@ class Fuser:
         uses this to decode a log once and run the estimator many times.
         """
         if environment:
-            if "air" in environment:
-                self.push_air(*environment["air"])
-            if "humidity" in environment:
-                self.push_humidity(*environment["humidity"])
+            if not isinstance(environment, dict) or set(environment) - {"air", "humidity"}:
+                raise InputError("expected environment={'air': (t_s, temp_c), 'humidity': "
+                                 "(t_s, rh)}", field="environment")
+            for key, push in (("air", self.push_air), ("humidity", self.push_humidity)):
+                if key in environment:
+                    value = environment[key]
+                    if not isinstance(value, (tuple, list)) or len(value) != 2:
+                        raise InputError("expected a pair (t_s, values)",
+                                         field=f"environment.{key}")
+                    push(*value)
+        if not isinstance(readings, dict):
+            raise InputError("expected a dict: sensor name -> (t_s, raw) or (t_s, raw, "
+                             "ping_t_s)", field="readings")
         parts = []
         for name, value in readings.items():
             if name not in self._index:
                 raise InputError(f"unknown sensor {name!r}; the rig has "
                                  f"{', '.join(self.sensor_names)}", field="sensor")
+            if not isinstance(value, (tuple, list)) or not 2 <= len(value) <= 3:
+                raise InputError("expected (t_s, raw) or (t_s, raw, ping_t_s)", field=name)
             t_s, raw = value[0], value[1]
             ping = value[2] if len(value) > 2 else None
             try:
@@ -450,6 +494,9 @@ class Fuser:
 
     def estimate(self, direction: str) -> Estimate:
         """The current estimate of one direction (NaN before its first reading)."""
+        if direction not in self.directions:
+            raise InputError(f"no direction {direction!r}; the rig has "
+                             f"{', '.join(self.directions)}", field="direction")
         d = self.directions.index(direction)
         st = self.state
         nh = int(st["NH"][d])

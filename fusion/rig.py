@@ -302,6 +302,11 @@ class Rig:
                 raise ConfigError(f"sensor name {sname!r} is used twice", file=where,
                                   field=f"sensor.{sname}", row=_line_of(text, "name", sname))
             kind = sd.get("kind")
+            if "direction" not in sd:
+                raise ConfigError("missing; expected the name of the direction (track) this "
+                                  "ranger faces, e.g. \"front\"", file=where,
+                                  field=f"sensor.{sname}.direction",
+                                  row=_line_of(text, "name", sname))
             try:
                 if kind == "triangulation":
                     from .sensors.ir import TriangulationRanger
@@ -358,10 +363,46 @@ class Rig:
         return _toml.dumps(self.to_dict())
 
     def replace(self, **changes) -> "Rig":
-        """A copy with top-level parts replaced (``air=``, ``estimator=``, ``sensors=``...)."""
+        """A copy with top-level parts replaced, checked as a rig file would be.
+
+        ``air=``, ``estimator=`` and ``schedule=`` take a config object or a dict of the
+        keys to change (``rig.replace(estimator={"kind": "particle"})``); ``sensors=`` a
+        mapping name -> sensor (directions a new sensor faces are added); ``name=``,
+        ``directions=``.
+
+        Raises
+        ------
+        ConfigError
+            Anything `from_dict` would refuse (an unknown key, a bad value, a schedule
+            naming a sensor that is not an echo ranger, ...).
+        """
+        unknown = set(changes) - {f.name for f in fields(self)} - {"source"}
+        if unknown:
+            raise ConfigError(f"replace() got {', '.join(sorted(unknown))}; expected name, "
+                              "directions, sensors, air, estimator or schedule",
+                              field=sorted(unknown)[0])
         d = {f.name: getattr(self, f.name) for f in fields(self)}
+        for key, cls in (("air", AirConfig), ("estimator", EstimatorConfig),
+                         ("schedule", ScheduleConfig)):
+            v = changes.get(key)
+            if isinstance(v, dict):
+                base = {k: (list(x) if isinstance(x, tuple) else x)
+                        for k, x in asdict(d[key]).items()}
+                changes[key] = _take(cls, {**base, **v}, "<replace>", key, None)
         d.update(changes)
-        return Rig(**d)
+        sensors = dict(d["sensors"])
+        for k, sen in sensors.items():
+            if getattr(sen, "name", None) != k:
+                raise ConfigError(f"sensors[{k!r}] is named {getattr(sen, 'name', None)!r}; "
+                                  "the key must be the sensor's name", field=f"sensors.{k}")
+        if "sensors" in changes and "directions" not in changes:
+            dirs = list(d["directions"])
+            dirs += [s.direction for s in sensors.values() if s.direction not in dirs]
+            d["directions"] = tuple(dirs)
+        new = Rig(**d)
+        # the same checks as a rig file: through the dictionary it would be written as
+        Rig.from_dict(new.to_dict(), where="<replace>")
+        return new
 
     # --- queries -----------------------------------------------------------------
     @property

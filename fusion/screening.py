@@ -19,7 +19,7 @@ _T_MIN_C, _T_MAX_C = -60.0, 90.0
 PREDICT_WINDOW_S = 0.5
 
 
-def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False):
+def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False, streamed=None):
     """Air temperature at reading times, causally (the last good sample before each).
 
     Parameters
@@ -31,6 +31,9 @@ def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False):
     air : fusion.rig.AirConfig
     clean : bool
         The samples are already sorted, with only usable ones (skips the check).
+    streamed : bool, optional
+        Whether samples are expected (default: the rig names an air stream). Without,
+        the configured temperature is the design, not a fallback.
 
     Returns
     -------
@@ -46,7 +49,8 @@ def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False):
         st, sv = st[good], sv[good]
     temp = np.full(t_s.shape, air.fallback_temp_c)
     sigma = np.full(t_s.shape, air.fallback_sigma_c)
-    if not air.stream:  # no stream configured: the configured value is the design, not a fault
+    if not (bool(air.stream) if streamed is None else streamed):
+        # no stream: the configured value is the design, not a fault
         return temp, sigma, np.zeros(t_s.shape, bool)
     fallback = np.ones(t_s.shape, bool)
     if st.size:

@@ -18,7 +18,7 @@ import numpy as np
 
 from fusion import decisions as D
 from fusion.errors import InputError, LogFormatError, RangefuseError
-from fusion.fuser import Fuser
+from fusion.fuser import Fuser, make_fuser  # noqa: F401 (make_fuser: replay's public name too)
 from fusion.rig import Rig
 from fusion.estimators.smoother import rts_smooth
 
@@ -67,14 +67,6 @@ def load_rig(rig) -> Rig | None:
     if rig is None or isinstance(rig, Rig):
         return rig
     return Rig.load(rig)
-
-
-def make_fuser(rig: Rig):
-    """The estimator the rig asks for, behind the common ``process`` interface."""
-    if rig.estimator.kind == "particle":
-        from fusion.estimators.particle import ParticleFuser
-        return ParticleFuser(rig)
-    return Fuser(rig)
 
 
 class _Appender:
@@ -166,6 +158,7 @@ class ReplayResult:
     seconds: float
     span_s: tuple
     compile_s: float = 0.0  # compiling (or loading) the estimator kernel, not in `seconds`
+    duration_s: float = math.nan  # the logs' own lengths added up (span_s is first to last)
 
     # --- figures -------------------------------------------------------------------
     def plot(self, path=None, **kw):
@@ -182,21 +175,35 @@ class ReplayResult:
                     out.setdefault(D.NAMES[code], {})[name] = int(st.counts[code])
         return out
 
-    def errors(self, direction=None, smoothed=False) -> dict:
+    def _dir(self, direction):
         d = direction or self.directions[0]
-        st = self.dirs[d]
+        if d not in self.dirs:
+            raise InputError(f"no direction {d!r}; this replay has {', '.join(self.directions)}",
+                             field="direction")
+        return self.dirs[d]
+
+    def errors(self, direction=None, smoothed=False) -> dict:
+        """Error against truth by zone (empty zones None); ``smoothed`` needs a replay run
+        with ``smooth=True``."""
+        if smoothed and not self.smoothed:
+            raise InputError("this replay was not smoothed; run it with smooth=True "
+                             "(rangefuse replay --smooth)", field="smoothed")
+        st = self._dir(direction)
         return (st.err_smooth if smoothed else st.err).table()
 
     def nis(self, direction=None):
-        st = self.dirs[direction or self.directions[0]]
+        st = self._dir(direction)
         mean = st.nis_sum / st.nis_n if st.nis_n else math.nan
         return mean, st.nis_n, M.nis_bounds(st.nis_n)
 
     def summary(self) -> str:
         L = []
         span = self.span_s
+        dur = self.duration_s if math.isfinite(self.duration_s) else span[1] - span[0]
+        over = f"{dur:.1f} s" if len(self.log_paths) == 1 else \
+            f"{dur:.1f} s ({len(self.log_paths)} logs)"
         L.append(f"replay of {', '.join(os.path.basename(p) for p in self.log_paths)}: "
-                 f"{self.n_readings} readings over {span[1] - span[0]:.1f} s in "
+                 f"{self.n_readings} readings over {over} in "
                  f"{self.seconds:.2f} s ({self.n_readings / max(self.seconds, 1e-9):,.0f} "
                  f"readings/s); estimator {self.rig.estimator.kind}")
         if self.compile_s > 0.5:
@@ -220,8 +227,12 @@ class ReplayResult:
             L.append(f"direction {d}:")
             mean, n, (lo, hi) = self.nis(d)
             if n:
+                verdict = M.consistency_verdict(mean, n)
                 L.append(f"  time-averaged NIS {mean:.3f} over {n} fused readings; 95% bounds "
-                         f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
+                         f"[{lo:.3f}, {hi:.3f}]: {verdict}")
+                if verdict != "consistent":
+                    L.append("    (the rig's noise figures do not fit this log; `rangefuse "
+                             "tune` estimates them from it)")
             else:
                 L.append("  no reading was fused: no NIS to judge")
             w = st.white.result()
@@ -379,6 +390,7 @@ def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
     dir_stats = {}
     n_total = 0
     span = (math.inf, -math.inf)
+    duration = 0.0
     any_truth = False
     for li, path in enumerate(paths):
         with open_log(path) as log:
@@ -406,6 +418,7 @@ def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
             any_truth |= res["has_truth"]
             if res["span"][0] <= res["span"][1]:
                 span = (min(span[0], res["span"][0]), max(span[1], res["span"][1]))
+                duration += res["span"][1] - res["span"][0]
             for k, v in res["sensors"].items():
                 if k in sensors_stats:
                     a = sensors_stats[k]
@@ -433,7 +446,7 @@ def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
     return ReplayResult(path="", log_paths=paths, rig=rig0, sensor_names=rig0.sensor_names,
                         directions=rig0.directions, n_readings=n_total, sensors=sensors_stats,
                         dirs=dir_stats, has_truth=any_truth, smoothed=smooth, seconds=0.0,
-                        span_s=span)
+                        span_s=span, duration_s=duration)
 
 
 class _Progress:

@@ -1056,6 +1056,9 @@ class ParticleFuser(Fuser):
 
     def estimate(self, direction: str) -> Estimate:
         """The current estimate of one direction (NaN before its first reading)."""
+        if direction not in self.directions:
+            raise InputError(f"no direction {direction!r}; the rig has "
+                             f"{', '.join(self.directions)}", field="direction")
         d = self.directions.index(direction)
         st = self.state
         nh = int(st["NH"][d])
