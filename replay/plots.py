@@ -576,7 +576,8 @@ def _collect_track(tf, group, dirs, lo_t, hi_t, max_points) -> dict:
             raise tf.error(f"has {pred[d]['nt']} rows but the decisions fused "
                            f"{pred[d]['k']} readings of direction {d}; expected one row per "
                            "fused reading", field=pred[d]["cols"]["t_s"].name)
-    out = {"series": {k: v.result(2) for k, v in series.items()},
+    out = {"estimator": rig.estimator.kind,
+           "series": {k: v.result(2) for k, v in series.items()},
            "rug": {k: v.result(1)[0] for k, v in rug.items()},
            "counts": counts, "temp": temp.line(), "dirs": {},
            # the largest thinning factor of raw readings, for the title
@@ -911,7 +912,8 @@ def _draw_track(data, dirs):
     thin = (f"\n(display thinned: 1 in {data['stride']} raw readings shown, lines keep their "
             "extremes; zoom in with --from/--to)" if data["stride"] > 1 else "")
     fig.suptitle(f"fused versus raw ranges: {data['title']}{data['range_text']} "
-                 f"({total:,} readings){thin}", fontsize=10.5)
+                 f"({total:,} readings; {data.get('estimator', 'kalman')} estimator){thin}",
+                 fontsize=10.5)
     _footer(fig)
     return fig
 
