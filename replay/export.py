@@ -254,6 +254,9 @@ class TrackFile:
 # --------------------------------------------------------------------------------------
 # CSV
 # --------------------------------------------------------------------------------------
+_BRANCH_NAMES = {-1: "", 0: "far", 1: "near"}
+
+
 def csv_prefix(track_path) -> str:
     """``dock.track.h5`` -> ``dock``; ``dock.h5`` -> ``dock``; other names are kept whole."""
     p = os.fspath(track_path)
@@ -321,7 +324,8 @@ def track_to_csv(track_path, out_prefix=None) -> list:
     smoothed), ranges first; its ``flags`` are names joined by ``|`` as in the decisions.
     ``<prefix>.decisions.csv`` has one row per input reading: ``sensor`` (name),
     ``row``, ``t_s``, ``direction`` (name), ``decision`` (name), ``flags`` (names joined
-    by ``|``), ``innovation_m``, ``nis``, ``branch``, ``branch_prob``, ``z_far_m``,
+    by ``|``), ``innovation_m``, ``nis``, ``branch`` (``far``, ``near`` or empty: the
+    candidate fused; for a reading with one candidate, ``far``), ``branch_prob``, ``z_far_m``,
     ``z_near_m``, ``sigma_far_m``, ``sigma_near_m``, ``temp_c``. A file holding several
     replayed logs gets a leading ``run`` column in both. Missing values (NaN) are empty
     fields; floats are written with the shortest text that reads back exactly.
@@ -398,6 +402,8 @@ def track_to_csv(track_path, out_prefix=None) -> list:
                                                    "decision"))
                             elif k == "flags":
                                 out.append(_flag_text(v, tf.flag_names))
+                            elif k == "branch":
+                                out.append([_BRANCH_NAMES.get(int(x), str(int(x))) for x in v])
                             elif v.dtype.kind == "f":
                                 out.append(_fmt_float(v))
                             else:
