@@ -6,8 +6,8 @@ readings cannot be used as logged (reading times that are not finite, negative o
 backwards; non-finite raw values; readings the rig decodes as invalid; labels outside
 the legend; a ping after its echo; environment values outside physical range; sensors
 the rig does not describe or describes differently). A *warning* leaves it valid:
-gaps, duplicated reading times, empty streams, rig sensors or streams absent from the
-log. Every line names the file, the dataset, the first row concerned (0-based dataset
+failed environment samples (NaN: the fuser uses the last good one), gaps, duplicated
+reading times, empty streams, rig sensors or streams absent from the log. Every line names the file, the dataset, the first row concerned (0-based dataset
 index) and what was expected.
 
 The log is read in blocks of 65 536 rows, so memory stays flat for logs of any length.
@@ -450,8 +450,14 @@ def _check_environment(log, name, info, problems, warnings) -> str:
 
     _scan_column(log, f"{where}/t_s", info.n, times, values)
     times.report(problems, path, f"{where}/t_s")
-    nonfinite.report(problems, path, f"{where}/value", "with a value that is NaN or infinite",
-                     f"finite values (unit {info.units!r})")
+    # A failed sample is written as NaN (a sensor that stopped answering): the fuser
+    # counts it as a failure and uses the last good value with a growing sigma.
+    if nonfinite.count:
+        noun = "sample" if nonfinite.count == 1 else "samples"
+        warnings.append(_line(path, f"{where}/value", nonfinite.rows[0],
+                              f"{nonfinite.count} failed {noun}, NaN or infinite "
+                              f"({_rows_text(nonfinite.rows, nonfinite.count)}): the replay "
+                              "uses the last good one, its sigma growing once it is stale"))
     hint = ""
     if info.quantity == "relative_humidity" and 1.0 < vmax[0] <= 100.0:
         hint = " (values up to 100 look like percent: divide by 100)"
