@@ -120,6 +120,49 @@ class _SensorStats:
     nis_n: int = 0
     flag_counts: dict = field(default_factory=dict)
     raw_err: M.ErrorStats = field(default_factory=M.ErrorStats)
+    # the longest silence between two readings, for the summary (a dead sensor)
+    n_t: int = 0
+    t_first: float = math.nan
+    t_last: float = math.nan
+    gap_s: float = 0.0
+    gap_from_s: float = math.nan
+    # when readings were decoded with a fallback air temperature
+    fallback_from_s: float = math.nan
+    fallback_to_s: float = math.nan
+
+    def add_times(self, t, fallback):
+        """Fold in a window's reading times (in order) and which used a fallback air."""
+        ok = np.isfinite(t)
+        t, fallback = t[ok], fallback[ok]
+        if not t.size:
+            return
+        ts = np.concatenate([[self.t_last], t]) if np.isfinite(self.t_last) else t
+        if ts.size > 1:
+            d = np.diff(ts)
+            k = int(np.argmax(d))
+            if d[k] > self.gap_s:
+                self.gap_s, self.gap_from_s = float(d[k]), float(ts[k])
+        if not np.isfinite(self.t_first):
+            self.t_first = float(t[0])
+        self.t_last = float(t[-1])
+        self.n_t += t.size
+        if fallback.any():
+            self._fallback_span(float(t[fallback].min()), float(t[fallback].max()))
+
+    def _fallback_span(self, lo, hi):
+        if np.isfinite(lo):
+            self.fallback_from_s = lo if not np.isfinite(self.fallback_from_s) else \
+                min(self.fallback_from_s, lo)
+            self.fallback_to_s = hi if not np.isfinite(self.fallback_to_s) else \
+                max(self.fallback_to_s, hi)
+
+    def silence(self):
+        """``(gap_s, from_s)`` when one silence stands out (over 1 s and over 20 times the
+        mean interval), else None."""
+        if self.n_t < 2:
+            return None
+        mean = (self.t_last - self.t_first) / (self.n_t - 1)
+        return (self.gap_s, self.gap_from_s) if self.gap_s > max(1.0, 20 * mean) else None
 
 
 @dataclass
@@ -270,7 +313,17 @@ class ReplayResult:
                 for r, v in rej.items()))
         fb = sum(st.flag_counts.get("temp_fallback", 0) for st in self.sensors.values())
         if fb:
-            L.append(f"air temperature fallback (stale or missing stream) for {fb} readings")
+            lo = min((st.fallback_from_s for st in self.sensors.values()
+                      if np.isfinite(st.fallback_from_s)), default=math.nan)
+            hi = max((st.fallback_to_s for st in self.sensors.values()
+                      if np.isfinite(st.fallback_to_s)), default=math.nan)
+            when = f", between {lo:.1f} s and {hi:.1f} s" if np.isfinite(lo) else ""
+            L.append(f"air temperature fallback (stale or missing stream) for {fb} "
+                     f"readings{when}")
+        for name, st in self.sensors.items():
+            quiet = st.silence()
+            if quiet:
+                L.append(f"{name} was silent for {quiet[0]:.1f} s from {quiet[1]:.1f} s")
         L.append("")
         L.append("Fused ranges are not a safety-rated protective function.")
         return "\n".join(L)
@@ -428,6 +481,9 @@ def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
                     for fk, fv in v.flag_counts.items():
                         a.flag_counts[fk] = a.flag_counts.get(fk, 0) + fv
                     a.raw_err.merge(v.raw_err)
+                    if v.gap_s > a.gap_s:
+                        a.gap_s, a.gap_from_s = v.gap_s, v.gap_from_s
+                    a._fallback_span(v.fallback_from_s, v.fallback_to_s)
                 else:
                     sensors_stats[k] = v
             for k, v in res["dirs"].items():
@@ -555,8 +611,12 @@ def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
     s_nisn = np.bincount(b.sensor, weights=nis_ok, minlength=ns)
     s_flag = {bit: np.bincount(b.sensor, weights=(b.flags & bit) != 0, minlength=ns)
               for bit in D.FLAG_NAMES}
+    fb_flag = (b.flags & D.FLAG_TEMP_FALLBACK) != 0
     for si, name in enumerate(names):
         st = sstats[name]
+        ms = b.sensor == si
+        if ms.any():
+            st.add_times(b.t_s[ms], fb_flag[ms])
         st.counts += counts[si]
         st.nis_sum += float(s_nis[si])
         st.nis_n += int(s_nisn[si])

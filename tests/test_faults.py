@@ -379,3 +379,27 @@ def test_repeat_probability_matches_a_simulated_quantiser():
     # a noiseless or unquantised value cannot be judged: the screen stays off
     assert stuck_limit(repeat_probability(0.0, 1.0)) == 0
     assert stuck_limit(repeat_probability(1.0, 0.0)) == 0
+
+
+def test_the_replay_summary_says_when_a_sensor_fell_silent_and_when_air_was_stale(tmp_path):
+    # the dead fault: echo_b neither pings nor reports from 8 s to 13 s
+    sc = load_scenario(_path("dead"))
+    f = sc.faults[0]
+    log = tmp_path / "dead.h5"
+    write_simulated(log, simulate(sc))
+    text = run(log, out=tmp_path / "dead.track.h5").summary()
+    line = next(x for x in text.splitlines() if "was silent" in x)
+    gap, start = (float(v) for v in
+                  line.split("silent for ")[1].replace(" s from ", " ").rstrip(" s").split())
+    assert line.startswith(f.target) and abs(start - f.from_s) < 0.2
+    assert abs(gap - (f.to_s - f.from_s)) < 0.2
+    # the temperature fault: samples fail from from_s; the fallback starts once the last
+    # good one is older than stale_after_s
+    sc = load_scenario(_path("temp_fail"))
+    f = sc.faults[0]
+    log = tmp_path / "temp.h5"
+    write_simulated(log, simulate(sc))
+    text = run(log, out=tmp_path / "temp.track.h5").summary()
+    line = next(x for x in text.splitlines() if "fallback" in x)
+    lo = float(line.split("between ")[1].split(" s")[0])
+    assert f.from_s + sc.rig.air.stale_after_s - 1.0 < lo < f.to_s
