@@ -211,7 +211,9 @@ class Fuser:
         -60..90 degC, marks a failed sample.
 
         Pushed samples are used whether or not the rig names an ``[air] stream`` (that
-        name only says which stream of a log to replay).
+        name only says which stream of a log to replay). Samples more than a minute older
+        than the earliest reading of the last batch decoded are forgotten (streaming for
+        days keeps memory flat); decoding readings that old again gets the oldest kept.
         """
         try:
             t_s = np.atleast_1d(np.asarray(t_s, float))
