@@ -750,8 +750,9 @@ class FilterpyKalman:
             if latest >= t - self.max_lead:
                 self.ahead[s] = 0
                 self.leap[s] = 0
-                if self.t_src[d] == s and t < self.T[d]:
-                    self.T[d] = t
+                for dd in range(len(self.T)):
+                    if self.t_src[dd] == s and t < self.T[dd]:
+                        self.T[dd] = t
             else:
                 self.ahead[s] += 1
                 if self.ahead[s] > K.AHEAD_ESCAPE:
@@ -761,8 +762,9 @@ class FilterpyKalman:
                 if j != s and self.leap[j] and self.ahead[j] == 0:
                     if t < self.last_t[j] - self.max_lag:
                         self.ahead[j] = 1
-                        if self.t_src[d] == j and t < self.T[d]:
-                            self.T[d] = t
+                        for dd in range(len(self.T)):
+                            if self.t_src[dd] == j and t < self.T[dd]:
+                                self.T[dd] = t
                     else:
                         self.leap[j] = 0
         if self.ahead[s] == 0:

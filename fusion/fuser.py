@@ -199,6 +199,7 @@ class Fuser:
         self._rh_v = np.zeros(0)
         self._first_air = math.nan  # the first good air sample (a unit's power-up air)
         self._air_pushed = self._rh_pushed = False
+        self._last_batch_t = math.inf  # first reading time of the last batch decoded
         self._pings = [(np.zeros(0), np.zeros(0), np.zeros(0, np.int64)) if k == K.KIND_ECHO
                        else (None, None, None) for k in self._kind]
 
@@ -212,8 +213,10 @@ class Fuser:
 
         Pushed samples are used whether or not the rig names an ``[air] stream`` (that
         name only says which stream of a log to replay). Samples more than a minute older
-        than the earliest reading of the last batch decoded are forgotten (streaming for
-        days keeps memory flat); decoding readings that old again gets the oldest kept.
+        than the first reading of the last two batches decoded are forgotten (streaming
+        for days keeps memory flat): a reading older than that, decoded later, gets the
+        configured fallback temperature (and the ``temp_fallback`` flag) if no kept
+        sample precedes it.
         """
         try:
             t_s = np.atleast_1d(np.asarray(t_s, float))
@@ -374,7 +377,11 @@ class Fuser:
         self._screen_crosstalk(sensor, ping, tof, code, flags, _rank_of(order))
         fin = t_s[np.isfinite(t_s)]
         if fin.size:
-            self._forget_environment_before(float(fin.min()))
+            # the earlier of this batch's and the last batch's first reading: one stray
+            # far-future stamp does not wipe the history the next readings need
+            first = float(fin.min())
+            self._forget_environment_before(min(first, self._last_batch_t))
+            self._last_batch_t = first
         # The order is kept with the times it was computed from: a caller that hands
         # run_prepared other times (the tuner shifting latencies) gets a fresh sort.
         return dict(sensor=sensor, row=row, t_s=t_s, t_meas=t_meas, z=z, sg=sg, code=code,

@@ -330,6 +330,9 @@ class Rig:
             if not isinstance(dn, str) or not dn:
                 raise ConfigError("each [[direction]] needs a name", file=where,
                                   field="direction.name")
+            if dn in dirs:
+                raise ConfigError(f"direction {dn!r} is named twice", file=where,
+                                  field="direction.name", row=_line_of(text, "name", dn))
             dirs.append(dn)
         for s in sensors.values():
             if s.direction not in dirs:
@@ -399,6 +402,18 @@ class Rig:
             dirs = list(d["directions"])
             dirs += [s.direction for s in sensors.values() if s.direction not in dirs]
             d["directions"] = tuple(dirs)
+        if not isinstance(d["name"], str):
+            raise ConfigError(f"name must be a string, got {d['name']!r}", field="name")
+        dirs = tuple(d["directions"])
+        if (not dirs or len(set(dirs)) != len(dirs)
+                or not all(isinstance(x, str) and x for x in dirs)):
+            raise ConfigError(f"directions must be distinct non-empty names, got {dirs!r}",
+                              field="directions")
+        missing = [sen.name for sen in sensors.values() if sen.direction not in dirs]
+        if missing:
+            raise ConfigError(f"sensor {missing[0]!r} faces a direction not in {dirs!r}",
+                              field=f"sensors.{missing[0]}.direction")
+        d["directions"] = dirs
         new = Rig(**d)
         # the same checks as a rig file: through the dictionary it would be written as
         Rig.from_dict(new.to_dict(), where="<replace>")

@@ -156,6 +156,14 @@ class _SensorStats:
             self.fallback_to_s = hi if not np.isfinite(self.fallback_to_s) else \
                 max(self.fallback_to_s, hi)
 
+    def _typical_interval(self):
+        return (self.t_last - self.t_first) / (self.n_t - 1) if self.n_t > 1 else math.nan
+
+    def silent_at_end(self, end_s) -> bool:
+        """Whether the sensor stopped long before the log ended (same test as `silence`)."""
+        iv = self._typical_interval()
+        return bool(np.isfinite(iv) and end_s - self.t_last > max(1.0, 20 * iv))
+
     def silence(self):
         """``(gap_s, from_s)`` when one silence stands out (over 1 s and over 20 times the
         mean interval), else None."""
@@ -324,6 +332,12 @@ class ReplayResult:
             quiet = st.silence()
             if quiet:
                 L.append(f"{name} was silent for {quiet[0]:.1f} s from {quiet[1]:.1f} s")
+            end = self.span_s[1]
+            if len(self.log_paths) == 1 and st.silent_at_end(end):
+                L.append(f"{name} was silent from {st.t_last:.1f} s to the end of the log "
+                         f"({end - st.t_last:.1f} s)")
+            if st.n_t == 0 and len(self.log_paths) == 1:
+                L.append(f"{name} gave no reading")
         L.append("")
         L.append("Fused ranges are not a safety-rated protective function.")
         return "\n".join(L)
@@ -483,6 +497,12 @@ def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
                     a.raw_err.merge(v.raw_err)
                     if v.gap_s > a.gap_s:
                         a.gap_s, a.gap_from_s = v.gap_s, v.gap_from_s
+                    if v.n_t:
+                        a.t_first = v.t_first if not np.isfinite(a.t_first) else \
+                            min(a.t_first, v.t_first)
+                        a.t_last = v.t_last if not np.isfinite(a.t_last) else \
+                            max(a.t_last, v.t_last)
+                        a.n_t += v.n_t
                     a._fallback_span(v.fallback_from_s, v.fallback_to_s)
                 else:
                     sensors_stats[k] = v

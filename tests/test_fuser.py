@@ -691,3 +691,17 @@ def test_streaming_for_hours_keeps_the_air_history_bounded():
         assert np.allclose(b.temp_c, va[np.where(np.isfinite(va), np.arange(50),
                                                  np.arange(50) - 1)])
     assert max(sizes) <= 2 * 60 / 0.5 + 60   # about the last minute and one block
+
+
+def test_a_jump_caught_by_another_direction_costs_its_own_direction_nothing():
+    # the jumped IR faces front with an echo ranger; a faster echo ranger on the left is
+    # the first to show the jump: the front track's time goes back too
+    rig = _rig([_ir(direction="front"), _echo(direction="front"),
+                _echo(name="side", direction="left")])
+    v, tof = float(CURVE.volts(0.40)), _tof(0.40)
+    events = [(t, "ir", t + (1.5 if 2.0 <= t < 4.0 else 0.0), v) for t in np.arange(0, 6, 0.02)]
+    events += [(t, "echo", t, tof) for t in np.arange(0.005, 6, 0.05)]
+    events += [(t, "side", t, _tof(1.0)) for t in np.arange(0.003, 6, 0.01)]
+    ev = sorted(events)
+    codes = _push_in_arrival_order(Fuser(rig), events)
+    assert D.LATE not in [c for (a, n, _t, _r), c in zip(ev, codes) if n != "ir"]

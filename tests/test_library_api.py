@@ -74,3 +74,42 @@ def test_replay_result_names_a_bad_direction_and_an_unsmoothed_run():
     with pytest.raises(InputError, match="not smoothed"):
         res.errors("front", smoothed=True)
     assert res.errors("front")["all"]["n"] > 0
+
+
+def test_one_stray_far_future_stamp_does_not_wipe_the_air_history():
+    e2 = dict(ECHO, name="us2")
+    rig = Rig.from_dict({"air": {"stream": "air"}, "sensor": [ECHO, e2]})
+    f = Fuser(rig)
+    f.push_air(np.arange(0.0, 400.0), np.full(400, 5.0))
+    raw = np.array([echo_time(1.0, 5.0)])
+    for name, t in (("us", 10.0), ("us", 1e6), ("us2", 10.05)):
+        b = f.process({name: (np.array([t]), raw)})
+    assert b.temp_c[0] == 5.0 and b.flags[0] == 0
+
+
+def test_rig_checks_directions_and_names():
+    rig = Rig.from_dict({"sensor": [ECHO]})
+    for kw in ({"directions": ()}, {"directions": ("front", "front")}, {"name": None}):
+        with pytest.raises(ConfigError):
+            rig.replace(**kw)
+    with pytest.raises(ConfigError, match="named twice"):
+        Rig.from_dict({"direction": [{"name": "front"}, {"name": "front"}],
+                       "sensor": [ECHO]})
+
+
+def test_the_summary_says_a_sensor_stopped_for_good(tmp_path):
+    from replay.logfile import SensorStream, open_log, write_log
+    src = os.path.join(os.path.dirname(__file__), "..", "datasets", "cold-store-dock.h5")
+    with open_log(src) as log:
+        streams = []
+        for n in log.sensors:
+            s = log.read_sensor(n)
+            keep = s.t_s < 80.0 if n == "echo_front" else np.ones(len(s), bool)
+            streams.append(SensorStream(n, s.kind, s.output, s.t_s[keep], s.raw[keep],
+                                        None if s.ping_t_s is None else s.ping_t_s[keep]))
+        env = {e: ("air_temperature", *log.environment(e)) for e in log.environments}
+        rig_toml = log.rig_toml
+    path = tmp_path / "stops.h5"
+    write_log(path, rig_toml, streams, env, None)
+    text = run(path, out=tmp_path / "stops.track.h5").summary()
+    assert "echo_front was silent from 80.0 s to the end of the log (70.0 s)" in text

@@ -279,8 +279,8 @@ def _clock(code, d, s, t, max_lead, max_lag, T, T_SRC, LAST_T, AHEAD, LEAP, ODD)
     more than `max_lag` behind the leapt sensor's latest shows that the leapt clock runs
     ahead of the rest of the rig: that sensor is marked ahead, and where its readings
     had set the track's time, the time label goes back to this reading's (the track is
-    made of real measurements; predicting across the leap only added process noise), so
-    nothing is lost to ``late``. A sensor marked ahead is decided ``clock_ahead`` until
+    made of real measurements; predicting across the leap only added process noise), in
+    every direction, so nothing is lost to ``late``. A sensor marked ahead is decided ``clock_ahead`` until
     the others catch up with its time (its clock came back: its own track's label goes
     back with it), or until `AHEAD_ESCAPE` of its readings pass with no other sensor
     heard from (then its clock is the only one left; it stays marked as leapt, to be
@@ -305,8 +305,9 @@ def _clock(code, d, s, t, max_lead, max_lag, T, T_SRC, LAST_T, AHEAD, LEAP, ODD)
         if latest >= t - max_lead:
             AHEAD[s] = 0  # back in step
             LEAP[s] = 0
-            if T_SRC[d] == s and t < T[d]:
-                T[d] = t
+            for dd in range(T.shape[0]):
+                if T_SRC[dd] == s and t < T[dd]:
+                    T[dd] = t
         else:
             AHEAD[s] += 1
             if AHEAD[s] > AHEAD_ESCAPE:
@@ -316,8 +317,9 @@ def _clock(code, d, s, t, max_lead, max_lag, T, T_SRC, LAST_T, AHEAD, LEAP, ODD)
             if j != s and LEAP[j] != 0 and AHEAD[j] == 0:
                 if t < LAST_T[j] - max_lag:
                     AHEAD[j] = 1  # j's clock runs ahead of this in-step sensor's
-                    if T_SRC[d] == j and t < T[d]:
-                        T[d] = t
+                    for dd in range(T.shape[0]):  # every track whose time j set
+                        if T_SRC[dd] == j and t < T[dd]:
+                            T[dd] = t
                 elif t >= LAST_T[j] - max_lag:
                     LEAP[j] = 0   # confirmed: the others are at its time too
     if AHEAD[s] == 0:
