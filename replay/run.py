@@ -291,7 +291,10 @@ class ReplayResult:
                 L.append(f"  innovation whiteness: lag-1..{len(w['rho'])} autocorrelation max "
                          f"|rho| = {max(abs(r) for r in w['rho']):.3f} (95% bound "
                          f"{w['bound']:.3f}); Ljung-Box Q = {w['q']:.1f}, p = {w['p']:.3g}")
-            L.append(f"  innovations log-likelihood {st.loglik:.1f}")
+            L.append(f"  innovations log-likelihood {st.loglik:.1f}"
+                     + (" (particle estimator: IR readings are scored per volt, so it does not "
+                        "compare with a Kalman run's)" if self.rig.estimator.kind == "particle"
+                        else ""))
             if st.amb_readings:
                 L.append(f"  near-zone ambiguity: {st.amb_readings} IR readings had two "
                          f"candidates; {st.amb_unresolved} stayed ambiguous "
