@@ -14,7 +14,7 @@ from fusion.rig import Rig
 from fusion.sensors.air import echo_time
 from replay.run import run
 
-ECHO = {"name": "us", "kind": "echo", "direction": "front", "output": "echo_time",
+ECHO = {"name": "echo", "kind": "echo", "direction": "front", "output": "echo_time",
         "tick_s": 0.0, "min_range_m": 0.03, "max_range_m": 4.0, "sigma_m": 0.003,
         "sigma_frac": 0.0}
 
@@ -24,7 +24,7 @@ def test_pushed_air_is_used_when_the_rig_names_no_stream():
     rig = Rig.from_dict({"sensor": [ECHO]})
     f = Fuser(rig)
     f.push_air(0.0, 0.0)
-    b = f.process({"us": (np.array([1.0]), np.array([echo_time(0.5, 0.0)]))})
+    b = f.process({"echo": (np.array([1.0]), np.array([echo_time(0.5, 0.0)]))})
     assert b.temp_c[0] == 0.0
     assert abs(b.z_m[0, 0] - 0.5) < 1e-6
 
@@ -43,12 +43,12 @@ def test_rig_replace_checks_what_it_is_given():
     with pytest.raises(ConfigError, match="schedule.order"):
         rig.replace(schedule={"order": ["nope"]})
     with pytest.raises(ConfigError, match="key must be the sensor's name"):
-        rig.replace(sensors={"other": rig.sensors["us"]})
+        rig.replace(sensors={"other": rig.sensors["echo"]})
     # a dict changes only the keys it names; a new direction comes with its sensor
     r2 = rig.replace(estimator={"kind": "particle"})
     assert r2.estimator.kind == "particle" and r2.estimator.accel_psd == rig.estimator.accel_psd
     from dataclasses import replace
-    r3 = rig.replace(sensors={"us": replace(rig.sensors["us"], direction="left")})
+    r3 = rig.replace(sensors={"echo": replace(rig.sensors["echo"], direction="left")})
     assert r3.directions == ("front", "left")
     assert type(make_fuser(r2)).__name__ == "ParticleFuser"
 
@@ -62,9 +62,9 @@ def test_misuse_of_the_fuser_names_the_field():
     with pytest.raises(InputError, match="readings"):
         f.process([(0.0, 0.001)])
     with pytest.raises(InputError, match="t_s, raw"):
-        f.process({"us": (np.zeros(1),)})
+        f.process({"echo": (np.zeros(1),)})
     with pytest.raises(InputError, match="environment"):
-        f.process({"us": (np.zeros(1), np.zeros(1))}, environment={"temp": (0, 20)})
+        f.process({"echo": (np.zeros(1), np.zeros(1))}, environment={"temp": (0, 20)})
 
 
 def test_replay_result_names_a_bad_direction_and_an_unsmoothed_run():
@@ -77,12 +77,12 @@ def test_replay_result_names_a_bad_direction_and_an_unsmoothed_run():
 
 
 def test_one_stray_far_future_stamp_does_not_wipe_the_air_history():
-    e2 = dict(ECHO, name="us2")
+    e2 = dict(ECHO, name="echo2")
     rig = Rig.from_dict({"air": {"stream": "air"}, "sensor": [ECHO, e2]})
     f = Fuser(rig)
     f.push_air(np.arange(0.0, 400.0), np.full(400, 5.0))
     raw = np.array([echo_time(1.0, 5.0)])
-    for name, t in (("us", 10.0), ("us", 1e6), ("us2", 10.05)):
+    for name, t in (("echo", 10.0), ("echo", 1e6), ("echo2", 10.05)):
         b = f.process({name: (np.array([t]), raw)})
     assert b.temp_c[0] == 5.0 and b.flags[0] == 0
 
