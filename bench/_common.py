@@ -734,20 +734,6 @@ class FilterpyKalman:
                 out.append((zm + slope * (0.0 - tm), slope, 1.0 / sw))
         return out
 
-    def _crosstalk_density(self, dpart, z_part, sg, t, fallback, outl):
-        """`_kernels._crosstalk_density`."""
-        db = -1 if math.isnan(dpart) else int(dpart)
-        if db < 0 or not self.comps[db] or math.isnan(z_part):
-            return fallback
-        m0, m1, p00, p01, p11 = self._moments(self.comps[db])
-        dt = max(t - self.T[db], 0.0)
-        m = m0 + m1 * dt
-        v = p00 + 2.0 * dt * p01 + dt * dt * p11 + self.q * dt ** 3 / 3.0 + sg * sg
-        if not v > 0.0:
-            return fallback
-        y = z_part - m
-        return outl + math.exp(-0.5 * (y * y / v + math.log(2.0 * math.pi) + math.log(v)))
-
     def _clock(self, code, d, s, t):
         """`_kernels._clock`, line for line."""
         if not (self.max_lead > 0.0) or math.isnan(t) or code == K.INVALID:
@@ -828,7 +814,6 @@ class FilterpyKalman:
         ev_code = prep["code"].tolist()
         ev_flags = prep["flags"].tolist()
         ev_raw = prep["rawv"].tolist()
-        ev_xt = prep["xt"].tolist() if "xt" in prep else [[-1.0, math.nan]] * len(ev_raw)
         n = len(order)
         o_code = np.empty(n, np.int8)
         o_branch = np.empty(n, np.int8)
@@ -870,10 +855,7 @@ class FilterpyKalman:
                         self.last_raw[s] = raw
                         self.last_new_t[s] = t
             suspect = (flags & K.FLAG_CROSSTALK_SUSPECT) != 0
-            o_dens = outl
-            if suspect:
-                o_dens = self._crosstalk_density(ev_xt[i][0], ev_xt[i][1], ev_s[i][0], t,
-                                                 outl * suspect_factor, outl)
+            o_dens = outl * suspect_factor if suspect else outl
             # a track whose predicted sigma would pass LOST_SIGMA_M restarts
             if code == K.ACCEPTED and comps and q * (t - self.T[d]) ** 3 / 3.0 > self.lost_var:
                 self.comps[d] = comps = []

@@ -179,7 +179,6 @@ class Fuser:
                               np.int64)
         self._hold = np.array([getattr(s, "hold_s", 0.0) for s in sens])
         self._blank = np.array([getattr(s, "min_range_m", 0.0) + s.offset_m for s in sens])
-        self._offset = np.array([s.offset_m for s in sens])
         # Dropout evidence from the same beam mixture the particle estimator uses: "no
         # echo" is likely inside the blanking zone, and has the max-range weight outside.
         mix = [echo_mixture(s) if s.kind == "echo" else None for s in sens]
@@ -375,9 +374,7 @@ class Fuser:
         bad_t = ~np.isfinite(t_meas)
         code[bad_t] = D.INVALID
         order = _processing_order(sensor, t_meas, ping)
-        xt = np.full((len(sensor), 2), np.nan)
-        xt[:, 0] = -1.0
-        self._screen_crosstalk(sensor, ping, tof, code, flags, _rank_of(order), z, xt)
+        self._screen_crosstalk(sensor, ping, tof, code, flags, _rank_of(order))
         fin = t_s[np.isfinite(t_s)]
         if fin.size:
             # the earlier of this batch's and the last batch's first reading: one stray
@@ -388,7 +385,7 @@ class Fuser:
         # The order is kept with the times it was computed from: a caller that hands
         # run_prepared other times (the tuner shifting latencies) gets a fresh sort.
         return dict(sensor=sensor, row=row, t_s=t_s, t_meas=t_meas, z=z, sg=sg, code=code,
-                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv, ping=ping, xt=xt,
+                    flags=flags, raw_m=raw_m, temp=temp, rawv=rawv, ping=ping,
                     _order=(t_meas, order))
 
     def run_prepared(self, prep: dict | None) -> StepBatch:
@@ -409,12 +406,8 @@ class Fuser:
         track = np.empty((n, 5))
         st = self.state
         direction = np.take(self._dir_of, sensor)
-        xt = prep.get("xt")
-        if xt is None:
-            xt = np.full((n, 2), np.nan)
-            xt[:, 0] = -1.0
         self._kernel(order, np.where(bad_t, 0.0, t_meas), direction, sensor, prep["z"],
-                     prep["sg"], prep["code"], prep["flags"], prep["rawv"], xt, out, track)
+                     prep["sg"], prep["code"], prep["flags"], prep["rawv"], out, track)
         return StepBatch(order=order, sensor=sensor, row=prep["row"], t_s=prep["t_s"],
                          t_meas_s=t_meas, direction=direction, code=out["code"],
                          flags=out["flags"], innovation_m=out["innov"], nis=out["nis"],
@@ -423,10 +416,10 @@ class Fuser:
                          temp_c=prep["temp"], state=track, p_major=out["pmaj"],
                          n_hyp=out["nh"], t_state_s=out["tt"])
 
-    def _kernel(self, order, t, direction, sensor, z, sg, code, flags, rawv, xt, out, track):
+    def _kernel(self, order, t, direction, sensor, z, sg, code, flags, rawv, out, track):
         """Run the estimator kernel over the events (subclasses swap the estimator)."""
         st = self.state
-        K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv, xt,
+        K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv,
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
                      self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
@@ -435,7 +428,7 @@ class Fuser:
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
-    def _screen_crosstalk(self, sensor, ping, tof, code, flags, rank, z, xt):
+    def _screen_crosstalk(self, sensor, ping, tof, code, flags, rank):
         is_echo = self._kind[sensor] == K.KIND_ECHO
         has_ping = is_echo & np.isfinite(ping)
         if not has_ping.any():
@@ -455,23 +448,13 @@ class Fuser:
             o = np.argsort(pj, kind="stable")
             new.append((pj[o], tj[o], rj[o]))
         rx = np.where(has_ping, ping + tof, np.nan)
-        partner = (np.full(len(sensor), -1, np.int64), np.full(len(sensor), np.nan))
         suspect, definite = classify_crosstalk(rx, sensor, new, self._tau_min, self._tau_max,
-                                               _CROSSTALK_TOL_S, rank=rank, partner=partner)
+                                               _CROSSTALK_TOL_S, rank=rank)
         # Only a timing match is evidence (a ping merely inside the listening window is
         # not). A match is symmetric — when unit a hears b's echo, b's own reading matches
-        # a's ping just as well — so it marks both suspect and the track decides. The
-        # estimator weighs a suspect against b's track: were it b's echo, b's target
-        # would lie at c (rx - b's ping) / 2 (plus b's mount offset); where b's track
-        # agrees, that is a far better explanation than an ordinary outlier.
-        susp = definite & (code == D.ACCEPTED)
-        flags[susp] |= D.FLAG_CROSSTALK_SUSPECT
-        pb = partner[0]
-        m = susp & (pb >= 0) & np.isfinite(tof) & (tof > 0)
-        if m.any():
-            c = 2.0 * (z[m, 0] - self._offset[sensor[m]]) / tof[m]  # this reading's c(T)
-            xt[m, 0] = self._dir_of[pb[m]]
-            xt[m, 1] = 0.5 * c * partner[1][m] + self._offset[pb[m]]
+        # a's ping just as well — so it marks both suspect and the track decides: a
+        # suspect meets a higher outlier density in the estimator.
+        flags[definite & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
         horizon = np.nanmax(ping[has_ping]) - _PING_MEMORY_S
         self._pings = [(None, None, None) if p is None else
                        (p[p >= horizon], tf[p >= horizon], np.full(int((p >= horizon).sum()), -1))

@@ -70,7 +70,7 @@ def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False, streamed=None):
 
 
 def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=None,
-                       predict_window_s=PREDICT_WINDOW_S, partner=None):
+                       predict_window_s=PREDICT_WINDOW_S):
     """Find echo readings that are another unit's ping, by timing.
 
     A reading received at ``rx_t`` by unit ``a`` is *suspect* when another unit ``b``
@@ -107,9 +107,6 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
         readings rank before it (causal screening, as when readings are pushed one by one).
     predict_window_s : float
         Age limit of the pings a predicted arrival is drawn from; 0 turns prediction off.
-    partner : pair of (n,) arrays, optional
-        Filled for definite readings: the matched unit's index (int array, -1 elsewhere)
-        and the flight time from its (actual or predicted) ping to the reception.
 
     Returns
     -------
@@ -130,14 +127,9 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
             prank = entry[2] if len(entry) > 2 and rank is not None else None
             # (before the window test below: the partner's own ping may be unknown yet)
             if predict_window_s > 0:
-                pred, p_next = _predicted_match(rx, p, tof, prank,
-                                                None if rank is None else rank[ia],
-                                                tau_min_s[b], tau_max_s[b], tol_s,
-                                                predict_window_s)
+                pred = _predicted_match(rx, p, tof, prank, None if rank is None else rank[ia],
+                                        tau_min_s[b], tau_max_s[b], tol_s, predict_window_s)
                 definite[ia[pred]] = True
-                if partner is not None:
-                    partner[0][ia[pred]] = b
-                    partner[1][ia[pred]] = rx[pred] - p_next[pred]
             lo = np.searchsorted(p, rx - tau_max_s[b], side="left")
             hi = np.searchsorted(p, rx - tau_min_s[b], side="right")
             cnt = hi - lo
@@ -153,9 +145,6 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
                 if prank is not None:
                     match &= prank[kk] < rank[ia]
                 definite[ia[match]] = True
-                if partner is not None:
-                    partner[0][ia[match]] = b
-                    partner[1][ia[match]] = rx[match] - p[kk[match]]
     return suspect, definite
 
 
@@ -197,7 +186,7 @@ def _predicted_match(rx, p, tof, prank, rank, tau_min, tau_max, tol, window):
     with np.errstate(invalid="ignore"):
         ok = (have & np.isfinite(tof0) & (p_next >= rx - tau_max) & (p_next <= rx - tau_min)
               & (np.abs(rx - p_next - tof0) <= tol + jitter + drift))
-    return ok, p_next
+    return ok
 
 
 def safe_cycle_s(max_range_m, ring_down_s=0.001, temp_min_c=-10.0, margin=1.1):

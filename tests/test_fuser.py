@@ -705,36 +705,3 @@ def test_a_jump_caught_by_another_direction_costs_its_own_direction_nothing():
     ev = sorted(events)
     codes = _push_in_arrival_order(Fuser(rig), events)
     assert D.LATE not in [c for (a, n, _t, _r), c in zip(ev, codes) if n != "ir"]
-
-
-def test_a_crosstalk_suspect_is_weighed_against_its_partners_track():
-    # Unit a (front, target at 1.000 m) hears unit b's echo (left, target at 2.000 m):
-    # b pinged 5.8 ms before a, so that sound reaches a as if a's target were at 1.008 m,
-    # 2.5 sigma off a's track and inside its gate. Were it b's echo, b's target would be
-    # at c (rx - b's ping) / 2 = 2.000 m, where b's track is: crosstalk. (A reading that
-    # close to a's own echo also matches b's timing for every genuine reading of a, and
-    # b's for a's pings: timing alone cannot tell them apart; the tracks can.)
-    rig = _rig([_echo("a", direction="front", ping_logged=True, max_range_m=3.0),
-                _echo("b", direction="left", ping_logged=True, max_range_m=3.0)],
-               gate_probability=0.9995, accel_psd=0.001)
-    n, k = 60, 45
-    pb = np.arange(n) * 0.05
-    pa = pb + 2 * (2.0 - 1.008) / C20
-    tof_b = np.full(n, _tof(2.0))
-    tof_a = np.full(n, _tof(1.0))
-    tof_a[k] = pb[k] + _tof(2.0) - pa[k]      # a reports b's echo this once
-    streams = {"a": (pa + tof_a, tof_a, pa), "b": (pb + tof_b, tof_b, pb)}
-    prep = Fuser(rig).prepare(streams)
-    b = Fuser(rig).run_prepared(prep)
-    ia = np.flatnonzero(prep["sensor"] == 0)
-    ib = np.flatnonzero(prep["sensor"] == 1)
-    assert prep["flags"][ia[k]] & D.FLAG_CROSSTALK_SUSPECT
-    assert b.code[ia[k]] == D.CROSSTALK
-    # the genuine readings of both units, suspects too, are kept
-    assert np.all(b.code[np.delete(ia, k)][10:] == D.ACCEPTED)
-    assert np.all(b.code[ib][10:] == D.ACCEPTED)
-    # without the partner's track the crosstalk reading would have been fused
-    p2 = dict(prep)
-    p2["xt"] = prep["xt"].copy()
-    p2["xt"][:, 0] = -1.0
-    assert Fuser(rig).run_prepared(p2).code[ia[k]] == D.ACCEPTED

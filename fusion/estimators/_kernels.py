@@ -377,34 +377,7 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
 
 
 @njit(cache=True)
-def _crosstalk_density(dpart, z_part, sg, t, q, outl, W, X, P, NH, T, mom):
-    """Density of a crosstalk suspect's range under "it is the matched unit's echo".
-
-    Were it that unit's echo, the unit's target would lie at ``z_part`` (the flight time
-    from its ping, at this reading's speed of sound, plus its mount offset); the unit's
-    own track predicts that range, so the explanation is as likely as the track says
-    (the Jacobian is 1: the two ranges differ by a constant). Added to the ordinary
-    outlier density. Without a track for the unit (or no partner), another unit having
-    pinged still makes crosstalk the likelier story for a reading off the track: the
-    outlier density times `SUSPECT_OUTLIER_FACTOR`.
-    """
-    db = int(dpart) if not math.isnan(dpart) else -1
-    if db < 0 or NH[db] == 0 or math.isnan(z_part):
-        return outl * SUSPECT_OUTLIER_FACTOR
-    _moments(W[db], X[db], P[db], NH[db], mom)
-    dt = t - T[db]
-    if dt < 0.0:
-        dt = 0.0
-    m = mom[0] + mom[1] * dt
-    v = mom[2] + 2.0 * dt * mom[3] + dt * dt * mom[4] + q * dt ** 3 / 3.0 + sg * sg
-    if not (v > 0.0):
-        return outl * SUSPECT_OUTLIER_FACTOR
-    y = z_part - m
-    return outl + math.exp(-0.5 * (y * y / v + LOG_2PI + math.log(v)))
-
-
-@njit(cache=True)
-def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw, ev_xt,
+def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
                W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
                T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
@@ -487,10 +460,9 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     LAST_RAW[s] = raw
                     LAST_NEW_T[s] = t
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
-        o_dens = outl
-        if suspect:
-            o_dens = _crosstalk_density(ev_xt[i, 0], ev_xt[i, 1], ev_s[i, 0], t, q, outl,
-                                        W, X, P, NH, T, mom)
+        # Another unit pinged while this one listened: crosstalk is a far likelier
+        # explanation of a reading off the track than it is for an ordinary reading.
+        o_dens = outl * SUSPECT_OUTLIER_FACTOR if suspect else outl
         if code == ACCEPTED and NH[d] > 0 and q * (t - T[d]) ** 3 / 3.0 > LOST_SIGMA_M ** 2:
             NH[d] = 0
             RBN[d] = 0

@@ -705,25 +705,9 @@ def _group(npart, npass):
     return npart // npass
 
 
-@njit(cache=True)
-def _suspect_factor(dpart, z_part, sg, t, q, outl, NH, T, MOM):
-    """The Kalman path's `_kernels._crosstalk_density`, as a factor on the outlier part,
-    with the partner direction's posterior moments ``MOM``."""
-    db = int(dpart) if not math.isnan(dpart) else -1
-    if db < 0 or NH[db] == 0 or math.isnan(z_part) or math.isnan(MOM[db, 0]) or outl <= 0.0:
-        return K.SUSPECT_OUTLIER_FACTOR
-    dt = max(t - T[db], 0.0)
-    m = MOM[db, 0] + MOM[db, 1] * dt
-    v = MOM[db, 2] + 2.0 * dt * MOM[db, 3] + dt * dt * MOM[db, 4] + q * dt ** 3 / 3.0 + sg * sg
-    if not (v > 0.0):
-        return K.SUSPECT_OUTLIER_FACTOR
-    y = z_part - m
-    return 1.0 + math.exp(-0.5 * (y * y / v + math.log(2.0 * math.pi * v))) / outl
-
-
 # ------------------------------------------------------------------------- the kernel
 @njit(cache=True)
-def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw, ev_xt,
+def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                  ev_volts, sens_kind, sens, grids, dir_split, par,
                  R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
                  T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
@@ -783,9 +767,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
         # As in the Kalman path: when another unit pinged while this one listened,
         # crosstalk is a far likelier explanation of a reading off the track.
-        ofac = _suspect_factor(ev_xt[i, 0], ev_xt[i, 1], ev_s[i, 0], t, q,
-                               row[S_W_RAND] / row[S_ZMAX] if row[S_ZMAX] > 0 else 0.0,
-                               NH, T, MOM) if suspect else 1.0
+        ofac = K.SUSPECT_OUTLIER_FACTOR if suspect else 1.0
         if code == ACCEPTED:
             z = ev_z[i]
             sg = ev_s[i]
@@ -1053,7 +1035,7 @@ class ParticleFuser(Fuser):
                 tab[j, S_DR] = r[1] - r[0]
         return tab, grids
 
-    def _kernel(self, order, t, direction, sensor, z, sg, code, flags, raw, xt, out, track):
+    def _kernel(self, order, t, direction, sensor, z, sg, code, flags, raw, out, track):
         """Run `particle_run` over the events (the hook `fusion.Fuser` calls)."""
         volts = np.full(len(t), np.nan)
         for j, name in enumerate(self.sensor_names):
@@ -1062,7 +1044,7 @@ class ParticleFuser(Fuser):
                 if m.any():
                     volts[m] = self.rig.sensors[name].to_volts(raw[m])
         st = self.state
-        particle_run(order, t, direction, sensor, z, sg, code, flags, raw, xt, volts,
+        particle_run(order, t, direction, sensor, z, sg, code, flags, raw, volts,
                      self._kind, self._sens, self._grids, self._dir_split, self._ppar,
                      st["R"], st["V"], st["W"], st["NH"], st["T"], st["MOM"], st["PMAJ"],
                      st["RNG"], st["RBT"], st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"],
