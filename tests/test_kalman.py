@@ -208,24 +208,28 @@ def test_rts_smoother_equals_filterpy():
     assert np.all(Ps[:-1, 0, 0] < P[:-1, 0, 0])
 
 
-def test_rts_smoother_block_by_block_equals_whole_run():
-    # Smoothing from the end in blocks, handing each block the smoothed state after it,
-    # is the same recursion (Rauch, Tung & Striebel 1965), so it must agree exactly.
-    q = 0.3
+def _linear_echo_run(q=0.3, n=200):
+    """A linear-Gaussian echo run (no gate, one hypothesis) to smooth: q, batch, x, P."""
     rig = _rig([_echo()], gate_probability=1.0, outlier_density=1e-300, max_hypotheses=1,
                accel_psd=q)
     rng = np.random.default_rng(13)
-    t = _irregular_times(rng, 200)
-    r = 2.0 + 0.3 * np.cos(t) + rng.normal(0.0, 0.004, 200)
+    t = _irregular_times(rng, n)
+    r = 2.0 + 0.3 * np.cos(t) + rng.normal(0.0, 0.004, n)
     b = Fuser(rig).process({"echo": (t, echo_time(r, TEMP_C))}).in_time_order()
     x, P = _state_P(b.state)
+    return q, b, x, P
+
+
+def test_rts_smoother_block_by_block_equals_whole_run():
+    # Smoothing from the end in blocks, handing each block the smoothed state after it,
+    # is the same recursion (Rauch, Tung & Striebel 1965), so it must agree exactly.
+    q, b, x, P = _linear_echo_run()
     xs, Ps = rts_smooth(b.t_state_s, x, P, q)
     xb, Pb = rts_smooth(b.t_state_s[120:], x[120:], P[120:], q)
     xa, Pa = rts_smooth(b.t_state_s[:120], x[:120], P[:120], q,
                         nxt=(b.t_state_s[120], xb[0], Pb[0]))
     np.testing.assert_allclose(np.concatenate([xa, xb]), xs, rtol=1e-12, atol=1e-15)
     np.testing.assert_allclose(np.concatenate([Pa, Pb]), Ps, rtol=1e-12, atol=1e-18)
-
 
 
 def test_replay_smoothing_restarts_at_a_reacquired_row():
@@ -235,14 +239,7 @@ def test_replay_smoothing_restarts_at_a_reacquired_row():
     import h5py
     from replay import metrics as M
     from replay.run import TRACK_REACQUIRED, _smooth_track
-    q = 0.3
-    rig = _rig([_echo()], gate_probability=1.0, outlier_density=1e-300, max_hypotheses=1,
-               accel_psd=q)
-    rng = np.random.default_rng(13)
-    t = _irregular_times(rng, 200)
-    r = 2.0 + 0.3 * np.cos(t) + rng.normal(0.0, 0.004, 200)
-    b = Fuser(rig).process({"echo": (t, echo_time(r, TEMP_C))}).in_time_order()
-    x, P = _state_P(b.state)
+    q, b, x, P = _linear_echo_run()
     flags = np.zeros(200, np.int8)
     flags[120] = TRACK_REACQUIRED
     with h5py.File("smooth.h5", "w", driver="core", backing_store=False) as f:
