@@ -381,13 +381,17 @@ def test_repeat_probability_matches_a_simulated_quantiser():
     assert stuck_limit(repeat_probability(1.0, 0.0)) == 0
 
 
+def _fault_summary(kind, tmp_path):
+    """Simulate a fault scenario, replay it; ``(scenario, its fault, summary text)``."""
+    sc = load_scenario(_path(kind))
+    log = tmp_path / f"{kind}.h5"
+    write_simulated(log, simulate(sc))
+    return sc, sc.faults[0], run(log, out=tmp_path / f"{kind}.track.h5").summary()
+
+
 def test_the_replay_summary_says_when_a_sensor_fell_silent_and_when_air_was_stale(tmp_path):
     # the dead fault: echo_b neither pings nor reports from 8 s to 13 s
-    sc = load_scenario(_path("dead"))
-    f = sc.faults[0]
-    log = tmp_path / "dead.h5"
-    write_simulated(log, simulate(sc))
-    text = run(log, out=tmp_path / "dead.track.h5").summary()
+    sc, f, text = _fault_summary("dead", tmp_path)
     line = next(x for x in text.splitlines() if "was silent" in x)
     gap, start = (float(v) for v in
                   line.split("silent for ")[1].replace(" s from ", " ").rstrip(" s").split())
@@ -395,11 +399,7 @@ def test_the_replay_summary_says_when_a_sensor_fell_silent_and_when_air_was_stal
     assert abs(gap - (f.to_s - f.from_s)) < 0.2
     # the temperature fault: samples fail from from_s; the fallback starts once the last
     # good one is older than stale_after_s
-    sc = load_scenario(_path("temp_fail"))
-    f = sc.faults[0]
-    log = tmp_path / "temp.h5"
-    write_simulated(log, simulate(sc))
-    text = run(log, out=tmp_path / "temp.track.h5").summary()
+    sc, f, text = _fault_summary("temp_fail", tmp_path)
     line = next(x for x in text.splitlines() if "fallback" in x)
     lo = float(line.split("between ")[1].split(" s")[0])
     assert f.from_s + sc.rig.air.stale_after_s - 1.0 < lo < f.to_s
