@@ -104,7 +104,7 @@ def _joseph(x, P, z, r, xo, Po):
     Po[1, 1] = p11 + k1 * k1 * r
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _moments(W, X, P, nh, out):
     m0 = 0.0
     m1 = 0.0
