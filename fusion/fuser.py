@@ -356,25 +356,35 @@ class Fuser:
             parts.append((i, t_s, raw, ping, m, temp))
         if not parts:
             return None
-        sensor = np.concatenate([np.full(len(p[1]), p[0], np.int64) for p in parts])
-        row = np.concatenate([np.arange(len(p[1])) for p in parts])
-        t_s = np.concatenate([p[1] for p in parts])
-        t_meas = np.concatenate([p[4].t_s for p in parts])
-        z = np.concatenate([p[4].z_m for p in parts])
-        sg = np.concatenate([p[4].sigma_m for p in parts])
-        code = np.concatenate([p[4].code for p in parts]).astype(np.int8)
-        flags = np.concatenate([p[4].flags for p in parts]).astype(np.int16)
-        raw_m = np.concatenate([p[4].raw_m for p in parts])
-        temp = np.concatenate([p[5] for p in parts])
-        rawv = np.concatenate([p[2].astype(float) if p[2].dtype.kind in "fiu"
-                               else np.full(len(p[2]), np.nan) for p in parts])
-        tof = np.concatenate([p[4].tof_s for p in parts])
-        ping = np.concatenate([np.asarray(p[3], float) if p[3] is not None
-                               else np.full(len(p[1]), np.nan) for p in parts])
+        # one copy of each part into the event arrays
+        n = sum(len(p[1]) for p in parts)
+        sensor = np.empty(n, np.int64)
+        row = np.empty(n, np.int64)
+        t_s, t_meas, raw_m, temp, rawv, tof, ping = (np.empty(n) for _ in range(7))
+        z, sg = np.empty((n, 2)), np.empty((n, 2))
+        code = np.empty(n, np.int8)
+        flags = np.empty(n, np.int16)
+        a = 0
+        for i, ts, raw, pg, m, tp in parts:
+            b = a + len(ts)
+            sensor[a:b] = i
+            row[a:b] = np.arange(b - a)
+            t_s[a:b] = ts
+            t_meas[a:b] = m.t_s
+            z[a:b] = m.z_m
+            sg[a:b] = m.sigma_m
+            code[a:b] = m.code
+            flags[a:b] = m.flags
+            raw_m[a:b] = m.raw_m
+            temp[a:b] = tp
+            rawv[a:b] = raw if raw.dtype.kind in "fiu" else np.nan
+            tof[a:b] = m.tof_s
+            ping[a:b] = np.nan if pg is None else pg
+            a = b
         bad_t = ~np.isfinite(t_meas)
         code[bad_t] = D.INVALID
         order = _processing_order(sensor, t_meas, ping)
-        self._screen_crosstalk(sensor, ping, tof, code, flags, _rank_of(order))
+        self._screen_crosstalk(sensor, ping, tof, code, flags, order)
         fin = t_s[np.isfinite(t_s)]
         if fin.size:
             # the earlier of this batch's and the last batch's first reading: one stray
@@ -428,11 +438,14 @@ class Fuser:
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
-    def _screen_crosstalk(self, sensor, ping, tof, code, flags, rank):
+    def _screen_crosstalk(self, sensor, ping, tof, code, flags, order):
+        if int((self._kind == K.KIND_ECHO).sum()) < 2:
+            return  # a lone echo ranger hears no other unit's ping
         is_echo = self._kind[sensor] == K.KIND_ECHO
         has_ping = is_echo & np.isfinite(ping)
         if not has_ping.any():
             return
+        rank = _rank_of(order)
         # Add this batch's pings to the memory, then classify against them causally: a
         # reading sees only pings whose readings come before it in processing order, as
         # it would if they were pushed one by one (earlier batches rank -1).

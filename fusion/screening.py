@@ -7,6 +7,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from numba import njit
 
 from .sensors.air import speed_of_sound
 
@@ -54,19 +55,37 @@ def air_at(t_s, sample_t_s, sample_temp_c, air, clean=False, streamed=None):
         return temp, sigma, np.zeros(t_s.shape, bool)
     fallback = np.ones(t_s.shape, bool)
     if st.size:
-        j = np.searchsorted(st, t_s, side="right") - 1
-        have = (j >= 0) & np.isfinite(t_s)  # a reading with no usable time gets the fallback
-        jj = np.where(have, j, 0)
-        age = t_s - st[jj]
-        temp = np.where(have, sv[jj], temp)
-        stale = np.maximum(age - air.stale_after_s, 0.0)
-        grown = air.temp_sigma_c + air.stale_growth_c_per_s * stale
-        # a stale sample is never worth less than no sample at all (the fallback sigma)
-        if air.fallback_sigma_c > 0:
-            grown = np.minimum(grown, max(air.fallback_sigma_c, air.temp_sigma_c))
-        sigma = np.where(have, grown, sigma)
-        fallback = ~have | (age > air.stale_after_s)
+        cap = max(air.fallback_sigma_c, air.temp_sigma_c) if air.fallback_sigma_c > 0 \
+            else math.inf
+        _air_scan(t_s.reshape(-1), st, sv, air.stale_after_s, air.temp_sigma_c,
+                  air.stale_growth_c_per_s, cap, temp.reshape(-1), sigma.reshape(-1),
+                  fallback.reshape(-1))
     return temp, sigma, fallback
+
+
+@njit(cache=True)
+def _air_scan(t, st, sv, stale_after, sigma0, growth, cap, temp, sigma, fallback):
+    """`air_at` over readings: the last sample at or before each time (its age beyond
+    `stale_after` grows the sigma, up to `cap`); readings with none keep the fallback."""
+    m = st.shape[0]
+    j = -1
+    for i in range(t.shape[0]):
+        ti = t[i]
+        if not math.isfinite(ti):
+            continue  # no usable time: the fallback
+        # readings are nearly always in time order: walk from the last position
+        if j >= 0 and st[j] > ti:
+            j = np.searchsorted(st, ti, side="right") - 1
+        while j + 1 < m and st[j + 1] <= ti:
+            j += 1
+        if j < 0:
+            continue
+        age = ti - st[j]
+        temp[i] = sv[j]
+        g = sigma0 + growth * max(age - stale_after, 0.0)
+        # a stale sample is never worth less than no sample at all (the fallback sigma)
+        sigma[i] = min(g, cap)
+        fallback[i] = age > stale_after
 
 
 def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=None,
@@ -294,22 +313,58 @@ def stuck_readings(raw, usable, t_s, limit, hold_s=0.0, carry=None):
     """
     n = len(raw)
     stuck = np.zeros(n, bool)
-    idx = np.flatnonzero(np.asarray(usable, bool))
-    if limit <= 0 or idx.size == 0:
+    usable = np.asarray(usable, bool)
+    if limit <= 0 or not usable.any():
         return stuck, carry
-    v = np.asarray(raw)[idx]
-    t = np.asarray(t_s, dtype=float)[idx]
-    cont = np.empty(idx.size, bool)
-    cont[0] = carry is not None and bool(v[0] == carry[0])
-    cont[1:] = np.asarray(v[1:] == v[:-1], bool)
-    start = np.maximum.accumulate(np.where(cont, 0, np.arange(idx.size)))
-    in_carry = cont[0] & (start == 0)
-    count = np.arange(idx.size) - start + 1 + (np.where(in_carry, carry[2], 0) if cont[0] else 0)
-    t_first = np.where(in_carry, carry[1] if cont[0] else 0.0, t[start])
-    cycles = count
-    if hold_s > 0:
-        with np.errstate(invalid="ignore"):
-            cycles = np.minimum(count, np.floor((t - t_first) / hold_s) + 1)
-    stuck[idx] = cycles >= limit
-    return stuck, (v[-1], float(t_first[-1]), int(count[-1]))
+    raw = np.asarray(raw)
+    last = int(np.flatnonzero(usable)[-1])
+    cont0 = carry is not None and bool(raw[int(np.argmax(usable))] == carry[0])
+    if raw.dtype.kind in "fiub":
+        values = raw.astype(np.float64, copy=False)
+    else:
+        # text frames: equal frames get equal ids (only equality matters; usable frames
+        # parsed, so they are strings or bytes)
+        ids = {}
+        values = np.full(n, np.nan)
+        for i in np.flatnonzero(usable):
+            values[i] = ids.setdefault(raw[i], len(ids))
+    t_first, count = _stuck_scan(values, usable, np.asarray(t_s, dtype=float), int(limit),
+                                 float(hold_s), cont0,
+                                 float(carry[1]) if cont0 else 0.0,
+                                 int(carry[2]) if cont0 else 0, stuck)
+    return stuck, (raw[last], t_first, count)
+
+
+@njit(cache=True)
+def _stuck_scan(values, usable, t, limit, hold_s, cont0, carry_t, carry_n, stuck):
+    """One pass of `stuck_readings` over usable readings; returns the open run's
+    first time and length."""
+    have = False
+    prev = 0.0
+    t_first = carry_t
+    count = carry_n
+    for i in range(values.shape[0]):
+        if not usable[i]:
+            continue
+        v = values[i]
+        if have:
+            if v == prev:
+                count += 1
+            else:
+                count = 1
+                t_first = t[i]
+        elif cont0:
+            count += 1
+        else:
+            count = 1
+            t_first = t[i]
+        have = True
+        prev = v
+        cycles = float(count)
+        if hold_s > 0:
+            c = math.floor((t[i] - t_first) / hold_s) + 1.0
+            if c < cycles or math.isnan(c):  # as np.minimum: a NaN bound is never stuck
+                cycles = c
+        stuck[i] = cycles >= limit
+    return t_first, count
 

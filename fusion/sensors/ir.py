@@ -5,10 +5,12 @@ on a robot needs besides: its ADC, its noise, its sample-and-hold cycle and its 
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
+from numba import njit
 
 from .. import decisions as D
 from ..errors import ConfigError
@@ -147,20 +149,18 @@ class TriangulationRanger:
         raw = np.asarray(raw, dtype=float)
         t_s = np.asarray(t_s, dtype=float)
         if self.output == "counts":
-            top = 2 ** self.adc_bits - 1
-            ok = np.isfinite(raw) & (raw >= 0) & (raw <= top) & (raw == np.floor(raw))
-            idx = np.where(ok, raw, top + 1).astype(np.int64)
+            n = raw.shape[0]
+            m = Measurements(t_s=np.empty(n), z_m=np.empty((n, 2)), sigma_m=np.empty((n, 2)),
+                             code=np.empty(n, np.int8), flags=np.zeros(n, np.int16),
+                             tof_s=np.full(n, np.nan), raw_m=np.empty(n))
             z, sg, code = self._count_table
-            m = Measurements(t_s=t_s - self.latency_s, z_m=np.take(z, idx, axis=0),
-                             sigma_m=np.take(sg, idx, axis=0), code=np.take(code, idx),
-                             flags=np.zeros(raw.shape[0], np.int16),
-                             tof_s=np.full(raw.shape[0], np.nan),
-                             raw_m=np.take(z[:, 0], idx) - self.offset_m)
-        else:
-            z, sg, code = self._candidates(raw)
-            m = Measurements(t_s=t_s - self.latency_s, z_m=z, sigma_m=sg, code=code,
-                             flags=np.zeros(raw.shape[0], np.int16),
-                             tof_s=np.full(raw.shape[0], np.nan), raw_m=z[:, 0] - self.offset_m)
+            _count_lookup(raw, np.broadcast_to(t_s, (n,)), self.latency_s, self.offset_m, z, sg,
+                          code, m.t_s, m.z_m, m.sigma_m, m.code, m.raw_m)
+            return m
+        z, sg, code = self._candidates(raw)
+        m = Measurements(t_s=t_s - self.latency_s, z_m=z, sigma_m=sg, code=code,
+                         flags=np.zeros(raw.shape[0], np.int16),
+                         tof_s=np.full(raw.shape[0], np.nan), raw_m=z[:, 0] - self.offset_m)
         m.code[~np.isfinite(t_s)] = D.INVALID
         return m
 
@@ -209,6 +209,28 @@ class TriangulationRanger:
             z[:, col] = r + self.offset_m
             sgm[:, col] = np.where(np.isnan(r), np.nan, s)
         return z, sgm, code
+
+
+_INVALID = D.INVALID
+
+
+@njit(cache=True)
+def _count_lookup(raw, t, latency, offset, z_tab, sg_tab, code_tab, t_out, z, sg, code, raw_m):
+    """ADC counts through the per-code table (its last row: not a valid code), in one
+    pass; a reading without a finite time is invalid."""
+    top = z_tab.shape[0] - 2
+    for i in range(raw.shape[0]):
+        r = raw[i]
+        k = top + 1
+        if r >= 0 and r <= top and r == math.floor(r):  # False for NaN
+            k = int(r)
+        z[i, 0] = z_tab[k, 0]
+        z[i, 1] = z_tab[k, 1]
+        sg[i, 0] = sg_tab[k, 0]
+        sg[i, 1] = sg_tab[k, 1]
+        code[i] = code_tab[k] if math.isfinite(t[i]) else _INVALID
+        raw_m[i] = z_tab[k, 0] - offset
+        t_out[i] = t[i] - latency
 
 
 def _typed(value, typ, where, fieldname):
