@@ -349,8 +349,10 @@ class Fuser:
             m, temp = self.decode(name, t_s, raw, ping)
             i = self._index[name]
             if self._stuck_limit[i]:
+                # a text frame is compared by the range it carries (parsed once already)
+                value = raw if raw.dtype.kind in "fiub" else m.raw_m
                 stuck, self._stuck_run[i] = stuck_readings(
-                    raw, (m.code == D.ACCEPTED) & np.isfinite(m.t_s), t_s,
+                    value, (m.code == D.ACCEPTED) & np.isfinite(m.t_s), t_s,
                     self._stuck_limit[i], self._hold[i], self._stuck_run[i])
                 m.code[stuck] = D.STUCK
             parts.append((i, t_s, raw, ping, m, temp))
@@ -541,9 +543,16 @@ def _processing_order(sensor, t_meas, ping):
     # do the tie-breaks matter, and then the full three-key sort decides.
     order = np.argsort(key, kind="stable")
     ks = key[order]
-    if ks.size < 2 or bool(np.all(ks[1:] > ks[:-1])):
+    tie = ks[1:] == ks[:-1]
+    if not tie.any():
         return order
     pkey = np.where(np.isfinite(ping), ping, np.inf)
+    # Ties (two sensors stamped alike) are usually already in (ping, sensor) order;
+    # checking each tied neighbour pair is cheaper than the three-key sort.
+    a, b = order[:-1][tie], order[1:][tie]
+    pa, pb = pkey[a], pkey[b]
+    if bool(np.all((pa < pb) | ((pa == pb) & (sensor[a] <= sensor[b])))):
+        return order
     return np.lexsort((sensor, pkey, key))
 
 

@@ -39,6 +39,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass, fields
+from functools import cached_property
 from typing import ClassVar
 
 import numpy as np
@@ -60,6 +61,7 @@ DEFAULT_FRAME_FORMAT = "R{count:04d}"
 _TIMEOUT_SPEED_MPS = 340.0
 _TIMEOUT_MARGIN = 1.1
 _SQRT12 = math.sqrt(12.0)
+_FRAME_MEMO_MAX = 1 << 16  # distinct frames remembered per unit
 
 _STR_FIELDS = ("name", "direction", "output", "frame_pattern", "frame_format", "compensation")
 _BOOL_FIELDS = ("ping_logged",)
@@ -263,6 +265,11 @@ class EchoRanger:
     def _frame_regex(self):
         return re.compile(self.frame_pattern, re.ASCII)
 
+    @cached_property
+    def _frame_memo(self) -> dict:
+        """Frame -> parsed range, kept between decodes (see `_parse_frames`)."""
+        return {}
+
     def _reported_quantum_m(self) -> float:
         """Quantum of the reported range of a self-timing unit, metres."""
         if self.output == "pulse_width":
@@ -433,8 +440,11 @@ class EchoRanger:
                              field="raw")
         rx = self._frame_regex()
         unit = self.frame_unit_m
-        # A unit sends few distinct frames (one per count it can report): parse each once.
-        seen = {}
+        # A unit sends few distinct frames (one per count it can report): parse each once,
+        # across calls (a stream of garbage could grow the memo without bound: it is reset)
+        seen = self._frame_memo
+        if len(seen) > _FRAME_MEMO_MAX:
+            seen.clear()
         out = np.empty(n)
         for i, f in enumerate(frames):
             try:
