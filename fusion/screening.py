@@ -131,81 +131,88 @@ def classify_crosstalk(rx_t, sensor, pings, tau_min_s, tau_max_s, tol_s, rank=No
     -------
     suspect, definite : (n,) bool arrays
     """
-    rx_t = np.asarray(rx_t, dtype=float)
-    sensor = np.asarray(sensor)
+    rx_t = np.asarray(rx_t, dtype=float).reshape(-1)
+    sensor = np.asarray(sensor, dtype=np.int64).reshape(-1)
+    nb = len(pings)
+    starts = np.zeros(nb + 1, np.int64)
+    causal = np.zeros(nb, np.bool_)
+    for b, entry in enumerate(pings):
+        k = 0 if entry[0] is None else len(entry[0])
+        starts[b + 1] = starts[b] + k
+        causal[b] = k > 0 and len(entry) > 2 and rank is not None
+    pf, tf, rf = np.empty(starts[-1]), np.empty(starts[-1]), np.full(starts[-1], -1, np.int64)
+    for b, entry in enumerate(pings):
+        if starts[b + 1] > starts[b]:
+            pf[starts[b]:starts[b + 1]] = entry[0]
+            tf[starts[b]:starts[b + 1]] = entry[1]
+            if causal[b]:
+                rf[starts[b]:starts[b + 1]] = entry[2]
+    rk = np.zeros(rx_t.shape, np.int64) if rank is None else np.asarray(rank, np.int64)
     suspect = np.zeros(rx_t.shape, bool)
     definite = np.zeros(rx_t.shape, bool)
-    known = np.isfinite(rx_t)
-    for a in np.unique(sensor[known]):
-        ia = np.flatnonzero(known & (sensor == a))
-        rx = rx_t[ia]
-        for b, entry in enumerate(pings):
-            p, tof = entry[0], entry[1]
-            if b == a or p is None or len(p) == 0:
-                continue
-            prank = entry[2] if len(entry) > 2 and rank is not None else None
-            # (before the window test below: the partner's own ping may be unknown yet)
-            if predict_window_s > 0:
-                pred = _predicted_match(rx, p, tof, prank, None if rank is None else rank[ia],
-                                        tau_min_s[b], tau_max_s[b], tol_s, predict_window_s)
-                definite[ia[pred]] = True
-            lo = np.searchsorted(p, rx - tau_max_s[b], side="left")
-            hi = np.searchsorted(p, rx - tau_min_s[b], side="right")
-            cnt = hi - lo
-            has = cnt > 0
-            if not has.any():
-                continue
-            suspect[ia[has]] = True
-            for off in range(int(cnt.max())):
-                k = lo + off
-                ok = k < hi
-                kk = np.where(ok, k, 0)
-                match = ok & (np.abs(rx - p[kk] - tof[kk]) <= tol_s)
-                if prank is not None:
-                    match &= prank[kk] < rank[ia]
-                definite[ia[match]] = True
+    _crosstalk_scan(rx_t, sensor, pf, tf, rf, starts, causal, rk,
+                    np.asarray(tau_min_s, float), np.asarray(tau_max_s, float), float(tol_s),
+                    float(predict_window_s), suspect, definite)
     return suspect, definite
 
 
 _PREDICT_BACK = 8  # known pings scanned back for the last three causal ones
 
 
-def _predicted_match(rx, p, tof, prank, rank, tau_min, tau_max, tol, window):
-    """Readings received at `rx` that match the predicted next echo arrival of the unit
-    whose known pings are `p` (sorted), echo times `tof` and reading ranks `prank`
-    (see `classify_crosstalk`); only pings whose readings rank before each reading's
-    `rank` and no older than `window` before it count."""
-    n = rx.size
-    # the last three known (causal) pings before the reading, newest first
-    q = np.full((n, 3), np.nan)
-    e = np.full((n, 3), np.nan)
-    got = np.zeros(n, np.int64)
-    hi = np.searchsorted(p, rx - tau_min, side="right")
-    for off in range(1, _PREDICT_BACK + 1):
-        k = hi - off
-        ok = (k >= 0) & (got < 3)
-        if not ok.any():
-            break
-        kk = np.maximum(k, 0)
-        ok &= p[kk] >= rx - window
-        if prank is not None and rank is not None:
-            ok &= prank[kk] < rank
-        rows = np.flatnonzero(ok)
-        q[rows, got[rows]] = p[kk[rows]]
-        e[rows, got[rows]] = tof[kk[rows]]
-        got[rows] += 1
-    have = got == 3
-    period = q[:, 0] - q[:, 1]
-    jitter = np.abs(period - (q[:, 1] - q[:, 2]))
-    p_next = q[:, 0] + period
-    # the echo time of the newest ping that has one, and its change since the one before
-    tof0 = np.where(np.isfinite(e[:, 0]), e[:, 0], e[:, 1])
-    tof1 = np.where(np.isfinite(e[:, 0]), e[:, 1], e[:, 2])
-    drift = np.where(np.isfinite(tof1), np.abs(tof0 - tof1), 0.0)
-    with np.errstate(invalid="ignore"):
-        ok = (have & np.isfinite(tof0) & (p_next >= rx - tau_max) & (p_next <= rx - tau_min)
-              & (np.abs(rx - p_next - tof0) <= tol + jitter + drift))
-    return ok
+@njit(cache=True)
+def _crosstalk_scan(rx_t, sensor, pf, tf, rf, starts, causal, rank, tau_min, tau_max, tol,
+                    window, suspect, definite):
+    """`classify_crosstalk` reading by reading: unit ``b``'s known pings are
+    ``pf[starts[b]:starts[b + 1]]`` (sorted), with echo times `tf` and reader ranks `rf`.
+
+    Besides a match with a known ping, the *predicted* next echo arrival of a
+    free-running unit counts: its last three known (causal) pings no older than
+    `window` before the reading, newest first, give the period and its jitter, the
+    newest known echo time and its last change give the tolerance."""
+    q = np.empty(3)
+    e = np.empty(3)
+    for i in range(rx_t.shape[0]):
+        rx = rx_t[i]
+        if not math.isfinite(rx):
+            continue
+        a = sensor[i]
+        for b in range(starts.shape[0] - 1):
+            lo_b, hi_b = starts[b], starts[b + 1]
+            if b == a or hi_b == lo_b:
+                continue
+            p = pf[lo_b:hi_b]
+            tof = tf[lo_b:hi_b]
+            prank = rf[lo_b:hi_b]
+            ck = causal[b]
+            hi = np.searchsorted(p, rx - tau_min[b], side="right")
+            if window > 0:
+                got = 0
+                for off in range(1, _PREDICT_BACK + 1):
+                    k = hi - off
+                    if k < 0 or got >= 3:
+                        break
+                    if p[k] >= rx - window and (not ck or prank[k] < rank[i]):
+                        q[got] = p[k]
+                        e[got] = tof[k]
+                        got += 1
+                if got == 3:
+                    period = q[0] - q[1]
+                    jitter = abs(period - (q[1] - q[2]))
+                    p_next = q[0] + period
+                    # the echo time of the newest ping that has one, and its change
+                    tof0 = e[0] if math.isfinite(e[0]) else e[1]
+                    tof1 = e[1] if math.isfinite(e[0]) else e[2]
+                    drift = abs(tof0 - tof1) if math.isfinite(tof1) else 0.0
+                    if (math.isfinite(tof0) and p_next >= rx - tau_max[b]
+                            and p_next <= rx - tau_min[b]
+                            and abs(rx - p_next - tof0) <= tol + jitter + drift):
+                        definite[i] = True
+            lo = np.searchsorted(p, rx - tau_max[b], side="left")
+            if hi > lo:
+                suspect[i] = True
+                for k in range(lo, hi):
+                    if abs(rx - p[k] - tof[k]) <= tol and (not ck or prank[k] < rank[i]):
+                        definite[i] = True
 
 
 def safe_cycle_s(max_range_m, ring_down_s=0.001, temp_min_c=-10.0, margin=1.1):
