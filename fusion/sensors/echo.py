@@ -445,6 +445,13 @@ class EchoRanger:
         seen = self._frame_memo
         if len(seen) > _FRAME_MEMO_MAX:
             seen.clear()
+        try:
+            # set and map run in C: only the frames not met before are parsed here
+            for f in set(frames).difference(seen):
+                seen[f] = _parse_frame(rx, f, unit)
+            return np.fromiter(map(seen.__getitem__, frames), float, n)
+        except TypeError:
+            pass  # an unhashable object among them: frame by frame
         out = np.empty(n)
         for i, f in enumerate(frames):
             try:
