@@ -13,6 +13,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 
 from . import decisions as D
 from .errors import InputError
@@ -538,10 +539,13 @@ def _processing_order(sensor, t_meas, ping):
     (two echo readings at one instant: the unit that pinged first heard its own sound),
     then to the sensor index."""
     key = np.where(np.isfinite(t_meas), t_meas, -np.inf)
-    # Each sensor's readings are nearly always in time order already, so a stable sort of
-    # the times alone (merging those runs) is cheap; only when two readings share a time
-    # do the tie-breaks matter, and then the full three-key sort decides.
-    order = np.argsort(key, kind="stable")
+    # Each sensor's readings are nearly always in time order already, so merging those
+    # runs (stably: on equal times the earlier run first) is cheap; only when two readings
+    # share a time do the tie-breaks matter, and then the full three-key sort decides.
+    starts = np.flatnonzero(sensor[1:] != sensor[:-1]) + 1
+    order = np.empty(key.shape[0], np.int64)
+    if not _merge_runs(key, np.concatenate(([0], starts, [key.shape[0]])), order):
+        order = np.argsort(key, kind="stable")
     ks = key[order]
     tie = ks[1:] == ks[:-1]
     if not tie.any():
@@ -554,6 +558,26 @@ def _processing_order(sensor, t_meas, ping):
     if bool(np.all((pa < pb) | ((pa == pb) & (sensor[a] <= sensor[b])))):
         return order
     return np.lexsort((sensor, pkey, key))
+
+
+@njit(cache=True)
+def _merge_runs(key, bounds, order):
+    """Stable merge of the runs ``key[bounds[r]:bounds[r + 1]]`` into `order`; False (and
+    `order` unusable) when a run is not in order."""
+    nr = bounds.shape[0] - 1
+    for r in range(nr):
+        for i in range(bounds[r] + 1, bounds[r + 1]):
+            if not key[i] >= key[i - 1]:
+                return False
+    head = bounds[:-1].copy()
+    for j in range(order.shape[0]):
+        best = -1
+        for r in range(nr):
+            if head[r] < bounds[r + 1] and (best < 0 or key[head[r]] < key[head[best]]):
+                best = r
+        order[j] = head[best]
+        head[best] += 1
+    return True
 
 
 def _rank_of(order):

@@ -366,7 +366,7 @@ class EchoRanger:
         if not np.all((rh >= 0) & (rh <= 1)):
             raise InputError("expected relative humidity as a fraction from 0 to 1",
                              field="relative_humidity")
-        c = np.asarray(speed_of_sound(temp, rh), dtype=float).reshape(n)
+        c = _speed_by_runs(temp, rh)
 
         with np.errstate(over="ignore", invalid="ignore"):
             if self.output == "serial":
@@ -537,6 +537,22 @@ def _parse_frame(rx, frame, unit):
     except (TypeError, ValueError):
         return math.nan
     return v if (math.isfinite(v) and v >= 0) else math.nan
+
+
+def _speed_by_runs(temp, rh):
+    """`speed_of_sound` per reading, computed once per run of equal air (the temperature
+    holds from one air sample to the next, so a window has far fewer runs than readings)."""
+    n = temp.shape[0]
+    if n > 8:
+        new = np.empty(n, bool)
+        new[0] = True
+        np.not_equal(temp[1:], temp[:-1], out=new[1:])
+        new[1:] |= rh[1:] != rh[:-1]
+        starts = np.flatnonzero(new)
+        if starts.size <= n // 4:
+            c = np.asarray(speed_of_sound(temp[starts], rh[starts]), dtype=float)
+            return np.repeat(c, np.diff(np.append(starts, n)))
+    return np.asarray(speed_of_sound(temp, rh), dtype=float).reshape(n)
 
 
 def _quantise(x, quantum):
