@@ -6,7 +6,7 @@ direction, synthetic, about 10^6 readings) goes through
 * the compiled path: `fusion.Fuser.process` fed 65 536 readings at a time (decode,
   screening and the compiled kernel), and the kernel alone (`Fuser.run_prepared` on
   events prepared beforehand);
-* the baseline: the same events (decoded and screened by the same numpy code, which is
+* the baseline: the same events (decoded and screened by the same `Fuser.prepare`, which is
   not what is being compared) through `_common.FilterpyKalman`, the kernel's recursion
   ported line by line to Python on filterpy's ``KalmanFilter``. It runs on the first
   whole trajectory cycles only (it is slow) and is normalised per reading. Before any
@@ -152,10 +152,10 @@ def main(argv=None):
 
     tbt = C.Timing([tdb.best + tb.best], [tdb.cpu_best + tb.cpu_best])
     rows = [row("compiled Fuser.process (decode + screen + kernel)", n, tp),
-            row("  of which prepare (decode + screen, numpy)", n, td),
+            row("  of which prepare (decode + screen)", n, td),
             row("  of which run_prepared (kernel)", n, tk),
             row("compiled run_prepared on the baseline slice", nb, tkb),
-            row("baseline prepare (the same numpy decode)", nb, tdb),
+            row("baseline prepare (the same Fuser.prepare)", nb, tdb),
             row("baseline filterpy recursion", nb, tb, "{:.2f}"),
             row("baseline total", nb, tbt, "{:.2f}")]
     print(C.table(rows, ["path", "readings", "best s", "median s", "CPU s", "us/reading",
