@@ -551,8 +551,8 @@ def _processing_order(sensor, t_meas, ping):
     if not tie.any():
         return order
     pkey = np.where(np.isfinite(ping), ping, np.inf)
-    # Ties (two sensors stamped alike) are usually already in (ping, sensor) order;
-    # checking each tied neighbour pair is cheaper than the three-key sort.
+    # Equal times (two sensors read at one instant) usually come ordered by ping, then
+    # by sensor; checking each tied neighbour pair is cheaper than the three-key sort.
     a, b = order[:-1][tie], order[1:][tie]
     pa, pb = pkey[a], pkey[b]
     if bool(np.all((pa < pb) | ((pa == pb) & (sensor[a] <= sensor[b])))):
