@@ -689,7 +689,7 @@ class FilterpyKalman:
         self.rb[d] = buf
         n = len(buf)
         out = []
-        nfew = self.reacq_n // 2 + 1
+        nfew = min(self.reacq_n, 2)
         if n < nfew:
             return out
         for anchor in range(2):

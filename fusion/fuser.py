@@ -442,7 +442,7 @@ class Fuser:
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
     def _screen_crosstalk(self, sensor, ping, tof, code, flags, order):
-        if int((self._kind == K.KIND_ECHO).sum()) < 2:
+        if np.count_nonzero(self._kind == K.KIND_ECHO) < 2:
             return  # a lone echo ranger hears no other unit's ping
         is_echo = self._kind[sensor] == K.KIND_ECHO
         has_ping = is_echo & np.isfinite(ping)

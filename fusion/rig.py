@@ -139,7 +139,8 @@ class EstimatorConfig:
         Density (1/m) of readings unrelated to the target, used to keep a "this reading
         was an outlier" hypothesis alive.
     reacquire_count : int
-        Mutually consistent rejected readings that restart a track.
+        Mutually consistent rejected readings of one sensor that restart a track (two
+        suffice when they come from two sensors).
     reacquire_window_s : float
         ...that many inside this time window.
     max_rate_mps : float

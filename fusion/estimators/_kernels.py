@@ -184,10 +184,11 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     Each buffered reading has one or two candidates. For each candidate of the newest
     reading (an anchor), every reading offers its candidate nearest the anchor; those
     within reach of the anchor (three sigma each, a centimetre, and 0.5 m/s of motion)
-    form the story, which needs at least `nmin` readings — or, when two or more sensors
-    tell it, ``nmin // 2 + 1`` (independent witnesses agree sooner) — a weighted straight
-    line that fits each within three sigma plus a centimetre, and a rate no faster than
-    `vmax`.
+    form the story, which needs at least `nmin` readings from one sensor, or two from
+    two sensors (independent witnesses: a new target seen by the IR ranger and the echo
+    ranger alike is there, while clutter, ghosts and crosstalk are one unit's story) —
+    a weighted straight line that fits each within three sigma plus a centimetre, and a
+    rate no faster than `vmax`.
     Readings outside the story (crosstalk, clutter) do not spoil it. Returns how many
     anchors pass; ``out[k]`` = (range now, rate, variance of the range).
     """
@@ -199,7 +200,7 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
             j += 1
     RBN[d] = j
     n = j
-    nfew = nmin // 2 + 1
+    nfew = min(nmin, 2)
     if n < nfew:
         return 0
     npass = 0
