@@ -321,6 +321,31 @@ def test_reacquires_after_a_real_jump_within_reacquire_count_readings():
     assert b.state[-1, 0] == pytest.approx(0.5, abs=0.005)
 
 
+def test_two_rangers_that_agree_restart_the_track_at_the_second_reading():
+    # Independent witnesses: when a second sensor confirms a new range that the first
+    # reported, the change is real (M-of-N track confirmation, Blackman & Popoli, Design
+    # and Analysis of Modern Tracking Systems, 1999, from memory); two sensors
+    # that tell different wrong stories restart nothing.
+    rig = _rig([_echo("a"), _echo("b")], **REACQ)
+    rng = np.random.default_rng(17)
+    n, jump = 40, 20
+    t = np.arange(n) * 0.025                      # a and b take turns
+    r = np.where(np.arange(n) < jump, 1.0, 0.5) + rng.normal(0.0, 0.003, n)
+    who = np.arange(n) % 2
+    b = Fuser(rig).process({"a": (t[who == 0], _tof(r[who == 0])),
+                            "b": (t[who == 1], _tof(r[who == 1]))}).in_time_order()
+    assert list(b.code[jump:jump + 2]) == [D.GATED, D.REACQUIRED]
+    assert np.all(b.code[:jump] == D.ACCEPTED) and np.all(b.code[jump + 2:] == D.ACCEPTED)
+    # a and b each report a different short range after the jump: no common story, and
+    # each alone has fewer than reacquire_count readings in the window
+    r2 = r.copy()
+    k = np.arange(jump, jump + 8)
+    r2[k] = np.where(who[k] == 0, 0.5, 0.75)
+    b2 = Fuser(rig).process({"a": (t[who == 0], _tof(r2[who == 0])),
+                             "b": (t[who == 1], _tof(r2[who == 1]))}).in_time_order()
+    assert not np.any(b2.code[jump:jump + 7] == D.REACQUIRED)
+
+
 def test_isolated_spikes_never_restart_the_track():
     rig = _rig([_echo()], **REACQ)
     rng = np.random.default_rng(8)
