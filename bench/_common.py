@@ -621,6 +621,7 @@ class FilterpyKalman:
         self.blank = fuser._blank
         self.p_blank_drop = fuser._p_blank_drop
         self.p_drop = fuser._p_drop
+        self.far = fuser._far
         par = fuser._par
         self.q = par[K.P_Q]
         self.gate = par[K.P_GATE]
@@ -694,11 +695,16 @@ class FilterpyKalman:
             return out
         for anchor in range(2):
             a = buf[-1][1 + anchor]
-            if math.isnan(a):
+            if math.isnan(a) or buf[-1][3] < 0.0:
                 continue
             sa = math.sqrt(buf[-1][3 + anchor])
             story = []
+            witness = -1
             for e in buf:
+                if e[3] < 0.0:  # an IR ranger's "nothing inside my span up to e[1]"
+                    if a >= e[1]:
+                        witness = e[5]
+                    continue
                 z0, z1 = e[1], e[2]
                 best = 0
                 if math.isnan(z0) or (not math.isnan(z1) and abs(z1 - a) < abs(z0 - a)):
@@ -707,7 +713,8 @@ class FilterpyKalman:
                 reach = 3.0 * (math.sqrt(vi) + sa) + 0.01 + 0.5 * (t - e[0])
                 if abs(zi - a) <= reach:
                     story.append((e[0], zi, vi, e[5]))
-            several = any(x[3] != story[0][3] for x in story[1:])
+            several = bool(story) and (witness >= 0 and witness != story[0][3]
+                                       or any(x[3] != story[0][3] for x in story[1:]))
             if len(story) < (nfew if several else self.reacq_n):
                 continue
             sw = st = sz = 0.0
@@ -1021,6 +1028,15 @@ class FilterpyKalman:
                                     bestw = ch[j][0]
                                     innov = ch[j][3]
                                     nis = ch[j][2]
+            elif (code == K.OUT_OF_RANGE and flags & K.FLAG_NO_TARGET and comps
+                  and self.far[s] < math.inf and all(c_[1].x[0, 0] + 3.0 * math.sqrt(c_[1].P[0, 0]) < self.far[s]
+                          for c_ in comps)):
+                # `_kernels._buffer_witness`: one per sensor, the newest
+                buf = [e for e in self.rb[d] if not (e[5] == s and e[3] < 0.0)]
+                if len(buf) == K.RB:
+                    buf.pop(0)
+                buf.append((t, self.far[s], math.nan, -1.0, math.nan, s))
+                self.rb[d] = buf
             elif code == K.DROPOUT and self.kind[s] == K.KIND_ECHO and len(comps) > 1:
                 # "Nothing heard": likely when the target is inside the blanking zone.
                 ws = 0.0

@@ -11,7 +11,8 @@ __all__ = ["ACCEPTED", "AMBIGUOUS", "REACQUIRED", "FIRST_REJECT", "HELD", "DROPO
            "OUT_OF_RANGE", "CROSSTALK", "GATED", "INVALID", "LATE", "UNKNOWN_SENSOR", "STUCK",
            "CLOCK_AHEAD",
            "NAMES", "name_of", "code_of", "is_accepted",
-           "FLAG_TEMP_FALLBACK", "FLAG_CROSSTALK_SUSPECT", "FLAG_R_INFLATED", "FLAG_NAMES"]
+           "FLAG_TEMP_FALLBACK", "FLAG_CROSSTALK_SUSPECT", "FLAG_R_INFLATED", "FLAG_NO_TARGET",
+           "FLAG_NAMES"]
 
 ACCEPTED = 0        # fused
 AMBIGUOUS = 1       # fused, two range candidates kept as separate hypotheses
@@ -35,8 +36,9 @@ NAMES = ("accepted", "ambiguous", "reacquired", "held", "dropout", "out_of_range
 FLAG_TEMP_FALLBACK = 1      # air temperature stale or missing: fallback value, widened sigma
 FLAG_CROSSTALK_SUSPECT = 2  # another unit pinged inside this reading's listening window
 FLAG_R_INFLATED = 4         # host samples faster than the sensor updates: R inflated
+FLAG_NO_TARGET = 8          # IR ranger out of range low: nothing inside its valid span
 FLAG_NAMES = {FLAG_TEMP_FALLBACK: "temp_fallback", FLAG_CROSSTALK_SUSPECT: "crosstalk_suspect",
-              FLAG_R_INFLATED: "r_inflated"}
+              FLAG_R_INFLATED: "r_inflated", FLAG_NO_TARGET: "no_target"}
 
 
 def name_of(code) -> str:

@@ -185,6 +185,9 @@ class Fuser:
         mix = [echo_mixture(s) if s.kind == "echo" else None for s in sens]
         self._p_blank_drop = np.array([m.p_blank_dropout if m else 0.0 for m in mix])
         self._p_drop = np.array([m.w_max if m else 0.0 for m in mix])
+        # where an IR ranger's "nothing seen" ends (a witness against a track inside it)
+        self._far = np.array([s.curve.max_range_m + s.offset_m if s.kind == "triangulation"
+                              else np.inf for s in sens])
         c_fast, c_slow = speed_of_sound(60.0), speed_of_sound(-40.0)
         self._tau_min = np.array([2 * getattr(s, "min_range_m", 0.0) / c_fast for s in sens])
         self._tau_max = np.array([2 * getattr(s, "max_range_m", 0.0) / c_slow for s in sens])
@@ -434,7 +437,7 @@ class Fuser:
         st = self.state
         K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv,
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
-                     self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
+                     self._far, self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
                      st["T_SRC"], st["LAST_T"], st["AHEAD"], st["LEAP"],
                      st["CLOCK_ODD"],

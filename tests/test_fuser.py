@@ -346,6 +346,48 @@ def test_two_rangers_that_agree_restart_the_track_at_the_second_reading():
     assert not np.any(b2.code[jump:jump + 7] == D.REACQUIRED)
 
 
+def _leaving_run(ir_sees_target_after):
+    """An IR ranger (every 20 ms) and an echo ranger (every 50 ms) watch a target at
+    0.5 m, which at 1 s gives way to a wall at 3 m, beyond the IR ranger's 0.8 m span.
+    Returns the time-ordered batch and the time of the change."""
+    rig = _rig([_ir(), _echo()], **REACQ)
+    rng = np.random.default_rng(23)
+    t_ir, t_echo, t_change = np.arange(100) * 0.02, np.arange(40) * 0.05 + 0.003, 1.0
+    v = np.where((t_ir < t_change) | ir_sees_target_after, CURVE.volts(0.5), 0.1)
+    v = v + rng.normal(0.0, 0.01, t_ir.size)
+    r = np.where(t_echo < t_change, 0.5, 3.0) + rng.normal(0.0, 0.003, t_echo.size)
+    b = Fuser(rig).process({"ir": (t_ir, v), "echo": (t_echo, _tof(r))}).in_time_order()
+    return b, t_change
+
+
+def test_an_ir_ranger_that_sees_nothing_where_the_track_is_helps_restart_it():
+    # "Nothing inside my span" from the IR ranger contradicts a track inside the span and
+    # joins the echo ranger's story beyond it as a second witness: the track restarts at
+    # the echo ranger's second reading of the wall, not its `reacquire_count`-th
+    # (negative information from a sensor's field of view; Thrun, Burgard & Fox,
+    # Probabilistic Robotics, 2005, §6.3 on max-range and free-space readings, from memory).
+    b, t_change = _leaving_run(ir_sees_target_after=False)
+    ir, echo = b.sensor == 0, b.sensor == 1
+    after = b.t_s >= t_change
+    assert np.all((b.flags[ir & after] & D.FLAG_NO_TARGET) != 0)
+    assert np.all(b.code[ir & after] == D.OUT_OF_RANGE)
+    codes = b.code[echo & after]
+    assert list(codes[:2]) == [D.GATED, D.REACQUIRED]
+    assert np.all(codes[2:] == D.ACCEPTED)
+    assert b.state[-1, 0] == pytest.approx(3.0, abs=0.01)
+
+
+def test_an_ir_ranger_that_still_sees_the_target_gives_no_witness():
+    # The same echo readings, but the IR ranger still sees the target at 0.5 m (a soft
+    # wall it sees through, say): its accepted readings keep the track, and the echo
+    # ranger alone needs `reacquire_count` readings (common practice, no source).
+    b, t_change = _leaving_run(ir_sees_target_after=True)
+    after = b.t_s >= t_change
+    assert not np.any((b.flags[after] & D.FLAG_NO_TARGET) != 0)
+    assert not np.any(b.code[(b.sensor == 1) & after][:REACQ["reacquire_count"] - 1]
+                      == D.REACQUIRED)
+
+
 def test_isolated_spikes_never_restart_the_track():
     rig = _rig([_echo()], **REACQ)
     rng = np.random.default_rng(8)

@@ -28,6 +28,7 @@ FIRST_REJECT, HELD, DROPOUT, OUT_OF_RANGE, CROSSTALK, GATED, INVALID, LATE = 3, 
 CLOCK_AHEAD = 12
 FLAG_CROSSTALK_SUSPECT = 2
 FLAG_R_INFLATED = 4
+FLAG_NO_TARGET = 8
 KIND_IR, KIND_ECHO = 0, 1
 
 # Indices into the parameter vector (see fusion.fuser._params).
@@ -178,6 +179,30 @@ def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
 
 
 @njit(cache=True)
+def _buffer_witness(d, t, s, far, RBT, RBZ, RBV, RBS, RBN):
+    """Note that sensor `s` saw nothing inside its span (up to `far`) at `t`: a witness
+    for any story beyond `far`. One per sensor is kept, the newest (an IR ranger holds
+    and repeats its "nothing"; many would crowd the readings out of the buffer)."""
+    j = 0
+    for i in range(RBN[d]):
+        if not (RBS[d, i] == s and RBV[d, i, 0] < 0.0):
+            if j != i:
+                _move(d, i, j, RBT, RBZ, RBV, RBS)
+            j += 1
+    if j == RB:
+        for i in range(RB - 1):
+            _move(d, i + 1, i, RBT, RBZ, RBV, RBS)
+        j = RB - 1
+    RBT[d, j] = t
+    RBS[d, j] = s
+    RBZ[d, j, 0] = far
+    RBZ[d, j, 1] = math.nan
+    RBV[d, j, 0] = -1.0  # marks a witness
+    RBV[d, j, 1] = math.nan
+    RBN[d] = j + 1
+
+
+@njit(cache=True)
 def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     """Do the rejected readings of the last `window` seconds tell one consistent story?
 
@@ -189,7 +214,9 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     ranger alike is there, while clutter, ghosts and crosstalk are one unit's story) —
     a weighted straight line that fits each within three sigma plus a centimetre, and a
     rate no faster than `vmax`.
-    Readings outside the story (crosstalk, clutter) do not spoil it. Returns how many
+    Readings outside the story (crosstalk, clutter) do not spoil it. A witness (an IR
+    ranger that saw nothing inside its span, see `_buffer_witness`) joins every story
+    beyond its span as a second sensor, without a range to fit. Returns how many
     anchors pass; ``out[k]`` = (range now, rate, variance of the range).
     """
     n = RBN[d]
@@ -210,11 +237,16 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     tc = np.empty(RB)
     for anchor in range(2):
         a = RBZ[d, n - 1, anchor]
-        if math.isnan(a):
+        if math.isnan(a) or RBV[d, n - 1, 0] < 0.0:
             continue
         sa = math.sqrt(RBV[d, n - 1, anchor])
         m = 0
+        witness = -1  # a sensor that saw nothing where the track is, beyond which `a` lies
         for i in range(n):
+            if RBV[d, i, 0] < 0.0:
+                if a >= RBZ[d, i, 0]:
+                    witness = RBS[d, i]
+                continue
             best = 0
             if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
                                              abs(RBZ[d, i, 1] - a) < abs(RBZ[d, i, 0] - a)):
@@ -228,7 +260,7 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
                 tc[m] = RBT[d, i]
                 sc[m] = RBS[d, i]
                 m += 1
-        several = False
+        several = m > 0 and witness >= 0 and witness != sc[0]
         for i in range(1, m):
             if sc[i] != sc[0]:
                 several = True
@@ -379,7 +411,7 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
 
 @njit(cache=True)
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
-               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
+               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, sens_far, par,
                W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
                T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
@@ -645,6 +677,15 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                                 bestw = CW[j]
                                 innov = CY[j]
                                 nis = CNIS[j]
+        elif code == OUT_OF_RANGE and (flags & FLAG_NO_TARGET) != 0 and NH[d] > 0:
+            # An IR ranger that sees nothing where the whole track lies (well inside its
+            # span) contradicts the track: a witness for re-acquisition beyond the span.
+            inside = sens_far[s] < math.inf
+            for k in range(NH[d]):
+                if X[d, k, 0] + 3.0 * math.sqrt(P[d, k, 0, 0]) >= sens_far[s]:
+                    inside = False
+            if inside:
+                _buffer_witness(d, t, s, sens_far[s], RBT, RBZ, RBV, RBS, RBN)
         elif code == DROPOUT and sens_kind[s] == KIND_ECHO and NH[d] > 1:
             # "Nothing heard": likely when the target is inside the blanking zone.
             nh = NH[d]

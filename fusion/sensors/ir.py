@@ -151,25 +151,24 @@ class TriangulationRanger:
         if self.output == "counts":
             n = raw.shape[0]
             m = Measurements(t_s=np.empty(n), z_m=np.empty((n, 2)), sigma_m=np.empty((n, 2)),
-                             code=np.empty(n, np.int8), flags=np.zeros(n, np.int16),
+                             code=np.empty(n, np.int8), flags=np.empty(n, np.int16),
                              tof_s=np.full(n, np.nan), raw_m=np.empty(n))
-            z, sg, code = self._count_table
-            _count_lookup(raw, np.broadcast_to(t_s, (n,)), self.latency_s, self.offset_m, z, sg,
-                          code, m.t_s, m.z_m, m.sigma_m, m.code, m.raw_m)
+            _count_lookup(raw, np.broadcast_to(t_s, (n,)), self.latency_s, self.offset_m,
+                          *self._count_table, m.t_s, m.z_m, m.sigma_m, m.code, m.flags, m.raw_m)
             return m
-        z, sg, code = self._candidates(raw)
-        m = Measurements(t_s=t_s - self.latency_s, z_m=z, sigma_m=sg, code=code,
-                         flags=np.zeros(raw.shape[0], np.int16),
+        z, sg, code, flags = self._candidates(raw)
+        m = Measurements(t_s=t_s - self.latency_s, z_m=z, sigma_m=sg, code=code, flags=flags,
                          tof_s=np.full(raw.shape[0], np.nan), raw_m=z[:, 0] - self.offset_m)
-        m.code[~np.isfinite(t_s)] = D.INVALID
+        no_time = ~np.isfinite(t_s)
+        m.code[no_time] = D.INVALID
+        m.flags[no_time] = 0
         return m
 
     @cached_property
     def _count_table(self):
         # one row per ADC code, plus a last row for anything that is not a valid code
         top = 2 ** self.adc_bits - 1
-        z, sg, code = self._candidates(np.append(np.arange(top + 1, dtype=float), np.nan))
-        return z, sg, code
+        return self._candidates(np.append(np.arange(top + 1, dtype=float), np.nan))
 
     def _candidates(self, raw):
         n = raw.shape[0]
@@ -197,6 +196,8 @@ class TriangulationRanger:
         near = np.where(at_peak, np.nan, near)
         out = (~bad) & (above | no_target | beyond | (np.isnan(far) & np.isnan(near)))
         code[out] = D.OUT_OF_RANGE
+        # "nothing inside my span" is evidence against a track inside it (re-acquisition)
+        flags = np.where(out & ~above & (no_target | beyond), D.FLAG_NO_TARGET, 0).astype(np.int16)
         ok = code == D.ACCEPTED
         # Reflectivity and angle of the target scale the return: a proportional term.
         sv = np.hypot(sv, self.gain_sigma * np.where(np.isfinite(v), v, 0.0))
@@ -208,14 +209,15 @@ class TriangulationRanger:
             s = np.minimum(s, max(c.max_range_m, 1.0))
             z[:, col] = r + self.offset_m
             sgm[:, col] = np.where(np.isnan(r), np.nan, s)
-        return z, sgm, code
+        return z, sgm, code, flags
 
 
 _INVALID = D.INVALID
 
 
 @njit(cache=True)
-def _count_lookup(raw, t, latency, offset, z_tab, sg_tab, code_tab, t_out, z, sg, code, raw_m):
+def _count_lookup(raw, t, latency, offset, z_tab, sg_tab, code_tab, flag_tab, t_out, z, sg,
+                  code, flags, raw_m):
     """ADC counts through the per-code table (its last row: not a valid code), in one
     pass; a reading without a finite time is invalid."""
     top = z_tab.shape[0] - 2
@@ -228,7 +230,12 @@ def _count_lookup(raw, t, latency, offset, z_tab, sg_tab, code_tab, t_out, z, sg
         z[i, 1] = z_tab[k, 1]
         sg[i, 0] = sg_tab[k, 0]
         sg[i, 1] = sg_tab[k, 1]
-        code[i] = code_tab[k] if math.isfinite(t[i]) else _INVALID
+        if math.isfinite(t[i]):
+            code[i] = code_tab[k]
+            flags[i] = flag_tab[k]
+        else:
+            code[i] = _INVALID
+            flags[i] = 0
         raw_m[i] = z_tab[k, 0] - offset
         t_out[i] = t[i] - latency
 
