@@ -96,6 +96,17 @@ class ErrorStats:
         self.nees += np.bincount(zone, weights=(err / sigma) ** 2, minlength=3)
         self.cover2 += np.bincount(zone, weights=ae <= 2 * sigma, minlength=3)
 
+    def add_sums(self, block):
+        """Add one chunk's sums, already made by zone: rows n, s1, s2, worst, nees,
+        cover2 of a ``(6, 3)`` array, each summed in reading order from zero (what `add`
+        adds, so the totals are the same floats)."""
+        self.n += block[0]
+        self.s1 += block[1]
+        self.s2 += block[2]
+        self.worst = np.maximum(self.worst, block[3])
+        self.nees += block[4]
+        self.cover2 += block[5]
+
     def merge(self, other):
         for k in ("n", "s1", "s2", "nees", "cover2"):
             setattr(self, k, getattr(self, k) + getattr(other, k))

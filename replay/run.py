@@ -6,10 +6,14 @@ and folded into running diagnostics, so memory stays flat in the log's length.
 """
 from __future__ import annotations
 
+import collections
+import functools
 import json
 import math
 import os
+import queue
 import sys
+import threading
 import time
 from dataclasses import dataclass, field
 
@@ -22,7 +26,9 @@ from fusion.fuser import Fuser, make_fuser  # noqa: F401 (make_fuser: replay's p
 from fusion.rig import Rig
 from fusion.estimators.smoother import rts_smooth
 
+from . import _window_stats as W
 from . import metrics as M
+from ._chunks import ChunkEncoding, fletcher32
 from ._io import atomic_output, refuse_overwrite
 from .logfile import LIBVER, open_log
 
@@ -69,48 +75,161 @@ def load_rig(rig) -> Rig | None:
     return Rig.load(rig)
 
 
+class _Column:
+    """A dataset the `_ChunkWriter` writes, with its encoding and its rows so far."""
+
+    def __init__(self, ds):
+        self.ds = ds
+        self.encoding = ChunkEncoding.of(ds)
+        self.rows = ds.shape[0]
+
+
+class _ChunkWriter:
+    """Writes chunks into HDF5 datasets on one worker thread, in the order given.
+
+    Compressing and writing the track file is a third of a replay's work; on a second
+    core it overlaps the next windows' reading, decoding and fusing instead of adding to
+    them. The chunks are encoded by `replay._chunks` outside h5py's lock (HDF5's own
+    filters would hold it, and the log reads would wait), so only storing the bytes is
+    one HDF5 call at a time. A write that fails is raised again from the next `put` or
+    from `wait`.
+    """
+
+    def __init__(self, depth=8):
+        # at most `depth` batches waiting (a flush of the decisions is 16 chunks of at
+        # most 128 KiB): memory stays bounded
+        self._q = queue.Queue(maxsize=depth)
+        self._error = None
+        self._cancel = False
+        self._scratch = {}  # the worker's encoding buffers
+        self._thread = threading.Thread(target=self._work, name="rangefuse-track-writer",
+                                        daemon=True)
+        self._thread.start()
+
+    def column(self, ds) -> _Column:
+        return _Column(ds)
+
+    def _write(self, col, start, data):
+        end = start + len(data)
+        enc = col.encoding
+        if enc is None or start % enc.rows or len(data) > enc.rows:
+            if col.rows < end:
+                col.ds.resize((end,))
+                col.rows = end
+            col.ds[start:end] = data
+            return
+        raw = enc.encode(data, self._scratch)
+        if col.rows < end:
+            col.ds.resize((end,))
+            col.rows = end
+        col.ds.id.write_direct_chunk((start,), raw)
+
+    def _work(self):
+        while True:
+            job = self._q.get()
+            try:
+                if job is None:
+                    return
+                for col, start, data, done in job:
+                    if self._error is None and not self._cancel:
+                        try:
+                            self._write(col, start, data)
+                        except BaseException as exc:  # noqa: BLE001 (to the main thread)
+                            self._error = exc
+                    if done is not None:
+                        done()
+            finally:
+                self._q.task_done()
+
+    def _raise(self):
+        if self._error is not None:
+            exc, self._error = self._error, None
+            self._cancel = True  # nothing after a failed write is written
+            raise exc
+
+    def put(self, batch):
+        """For each ``(col, start, data, done)`` of `batch`, in order: write `data` at
+        row `start` of `col` (growing it), then call `done` (None: nothing to call).
+        One batch is one hand-over to the thread (each costs a wake-up and the GIL)."""
+        self._raise()
+        self._q.put(list(batch))
+
+    def wait(self):
+        """Return when every chunk given so far is in the file."""
+        self._q.join()
+        self._raise()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is not None:
+            self._cancel = True  # the file is being thrown away: skip what is left
+        self._q.put(None)
+        self._thread.join()
+        if exc_type is None:
+            self._raise()
+        return False
+
+
 class _Appender:
     """Resizable, chunked, checksummed datasets that grow chunk by chunk.
 
-    Rows are buffered and written a whole chunk at a time, so each chunk is compressed
-    once (a partly written chunk evicted from HDF5's cache would be compressed again on
-    every later write); memory holds at most one chunk per column.
+    Rows are copied into one buffer per column and written a whole chunk at a time, so
+    each chunk is compressed once (a partly written chunk evicted from HDF5's cache
+    would be compressed again on every later write). A full buffer goes to the
+    `_ChunkWriter` and comes back to this column's pool when written, so memory holds a
+    few chunks per column and buffers are reused rather than allocated.
     """
 
-    def __init__(self, group, cols):
-        self.ds = {}
+    def __init__(self, group, cols, writer):
+        self.cols = {}
+        self._dtype = {}
         for name, dt, units, packed in cols:
             ds = group.create_dataset(name, shape=(0,), maxshape=(None,), dtype=dt,
                                       chunks=(_CHUNK,), **(_FILTERS if packed else _PLAIN))
             if units:
                 ds.attrs["units"] = units
-            self.ds[name] = ds
+            self.cols[name] = writer.column(ds)
+            self._dtype[name] = dt
+        self._writer = writer
+        self._free = {name: collections.deque() for name in self.cols}  # written buffers
+        self._buf = {name: self._new_buffer(name) for name in self.cols}
         self.n = 0          # rows written or buffered
-        self._buf = {name: [] for name in self.ds}
         self._nbuf = 0
+
+    def _new_buffer(self, name):
+        try:
+            return self._free[name].pop()
+        except IndexError:
+            return np.empty(_CHUNK, self._dtype[name])
 
     def append(self, **cols):
         m = len(next(iter(cols.values())))
-        if m == 0:
-            return
-        for name in self.ds:
-            self._buf[name].append(np.asarray(cols[name]))
-        self._nbuf += m
-        self.n += m
-        if self._nbuf >= _CHUNK:
-            self.flush(whole_chunks=True)
+        i = 0
+        while i < m:
+            k = min(_CHUNK - self._nbuf, m - i)
+            for name, buf in self._buf.items():
+                buf[self._nbuf:self._nbuf + k] = cols[name][i:i + k]
+            self._nbuf += k
+            self.n += k
+            i += k
+            if self._nbuf == _CHUNK:
+                self.flush()
 
-    def flush(self, whole_chunks=False):
+    def flush(self):
+        """Hand the buffered rows to the writer (a whole chunk, or the last part one)."""
         if not self._nbuf:
             return
         start = self.n - self._nbuf
-        data = {name: np.concatenate(parts) for name, parts in self._buf.items()}
-        k = (self._nbuf // _CHUNK) * _CHUNK if whole_chunks else self._nbuf
-        for name, ds in self.ds.items():
-            ds.resize((start + k,))
-            ds[start:start + k] = data[name][:k]
-            self._buf[name] = [data[name][k:]] if k < self._nbuf else []
-        self._nbuf -= k
+        batch = []
+        for name, col in self.cols.items():
+            buf = self._buf[name]
+            batch.append((col, start, buf[:self._nbuf],
+                          functools.partial(self._free[name].append, buf)))
+            self._buf[name] = self._new_buffer(name)
+        self._writer.put(batch)
+        self._nbuf = 0
 
 
 @dataclass
@@ -120,7 +239,8 @@ class _SensorStats:
     nis_n: int = 0
     flag_counts: dict = field(default_factory=dict)
     raw_err: M.ErrorStats = field(default_factory=M.ErrorStats)
-    # the longest silence between two readings, for the summary (a dead sensor)
+    # the longest silence between two readings, for the summary (a dead sensor); the
+    # reading times are folded in by _window_stats.window_stats
     n_t: int = 0
     t_first: float = math.nan
     t_last: float = math.nan
@@ -129,25 +249,6 @@ class _SensorStats:
     # when readings were decoded with a fallback air temperature
     fallback_from_s: float = math.nan
     fallback_to_s: float = math.nan
-
-    def add_times(self, t, fallback):
-        """Fold in a window's reading times (in order) and which used a fallback air."""
-        ok = np.isfinite(t)
-        t, fallback = t[ok], fallback[ok]
-        if not t.size:
-            return
-        ts = np.concatenate([[self.t_last], t]) if np.isfinite(self.t_last) else t
-        if ts.size > 1:
-            d = np.diff(ts)
-            k = int(np.argmax(d))
-            if d[k] > self.gap_s:
-                self.gap_s, self.gap_from_s = float(d[k]), float(ts[k])
-        if not np.isfinite(self.t_first):
-            self.t_first = float(t[0])
-        self.t_last = float(t[-1])
-        self.n_t += t.size
-        if fallback.any():
-            self._fallback_span(float(t[fallback].min()), float(t[fallback].max()))
 
     def _fallback_span(self, lo, hi):
         if np.isfinite(lo):
@@ -407,8 +508,9 @@ def run(log, rig=None, *, out=None, smooth=False, window_s=None, progress=False,
     with atomic_output(out, inputs=paths) as tmp:
         # Chunks are written whole (see _Appender), so no chunk cache is needed; the
         # default one would hold megabytes per column for nothing.
-        with h5py.File(tmp, "w", libver=LIBVER, track_order=True, rdcc_nbytes=0) as f5:
-            result = _run_into(f5, paths, rig_given, smooth, window_s, progress)
+        with h5py.File(tmp, "w", libver=LIBVER, track_order=True, rdcc_nbytes=0) as f5, \
+                _ChunkWriter() as writer:  # every chunk is written before the file closes
+            result = _run_into(f5, paths, rig_given, smooth, window_s, progress, writer)
     result.path = out
     result.seconds = time.perf_counter() - t_start
     result.compile_s = compile_s
@@ -417,7 +519,8 @@ def run(log, rig=None, *, out=None, smooth=False, window_s=None, progress=False,
 
 def _warm_kernel(rig, path) -> float:
     """Compile (or load from numba's cache) the estimator's kernel on one invalid
-    reading, so the replay's own time is the replay's; returns the seconds it took."""
+    reading, and the replay's diagnostics and checksum kernels, so the replay's own time
+    is the replay's; returns the seconds it took."""
     t0 = time.perf_counter()
     try:
         if rig is None:
@@ -426,9 +529,17 @@ def _warm_kernel(rig, path) -> float:
         f = make_fuser(rig)
         name = next(iter(rig.sensors))
         raw = np.array([""]) if rig.sensors[name].output == "serial" else np.array([np.nan])
-        f.process({name: (np.array([np.nan]), raw)})
+        b = f.process({name: (np.array([np.nan]), raw)})
     except RangefuseError:
         return 0.0  # the replay itself will report what is wrong
+    # and the replay's own kernels, on that reading against a made-up truth
+    dirs, ns = f.directions, len(f.sensor_names)
+    truth = (np.array([0.0, 1.0]), np.array([1.0, 1.0]))
+    ws = W.WindowStats(rig, f.sensor_names, dirs, {d: truth for d in dirs},
+                       {d: M.zone_edges(rig, d) for d in dirs}, _truth_interp)
+    ws.run(b.in_time_order(), np.full(ns, np.nan), np.full(ns, np.nan), np.zeros(ns, np.int64),
+           np.zeros(ns), np.full(ns, np.nan))
+    fletcher32(np.zeros(2, np.uint8))
     return time.perf_counter() - t0
 
 
@@ -454,7 +565,7 @@ def _rig_for(log, rig_given, path) -> Rig:
     return rig
 
 
-def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
+def _run_into(f5, paths, rig_given, smooth, window_s, progress, writer) -> ReplayResult:
     rig0 = None
     sensors_stats = {}
     dir_stats = {}
@@ -483,7 +594,7 @@ def _run_into(f5, paths, rig_given, smooth, window_s, progress) -> ReplayResult:
                                  "sensors and directions)", file=path, field="/rig")
             grp = f5.create_group(f"runs/{li}") if len(paths) > 1 else f5
             grp.attrs["log"] = os.path.abspath(path)
-            res = _replay_one(log, rig, grp, smooth, window_s, progress, path)
+            res = _replay_one(log, rig, grp, smooth, window_s, progress, path, writer)
             n_total += res["n"]
             any_truth |= res["has_truth"]
             if res["span"][0] <= res["span"][1]:
@@ -563,7 +674,7 @@ def _auto_window_s(log) -> float:
     return float(min(max(_WINDOW_ROWS * span / n, 1.0), 3600.0))
 
 
-def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
+def _replay_one(log, rig, grp, smooth, window_s, progress, path, writer) -> dict:
     fuser = make_fuser(rig)
     names = fuser.sensor_names
     dirs = fuser.directions
@@ -573,134 +684,114 @@ def _replay_one(log, rig, grp, smooth, window_s, progress, path) -> dict:
         fuser.push_air(*env["air"])
     if "humidity" in env:
         fuser.push_humidity(*env["humidity"])
-    truths = {d: _clean_truth(log.truth(d)) for d in dirs}
+    raw_truths = {d: log.truth(d) for d in dirs}  # read once: scored, then copied in
+    truths = {d: _clean_truth(raw_truths[d]) for d in dirs}
     has_truth = any(v is not None for v in truths.values())
     edges = {d: M.zone_edges(rig, d) for d in dirs}
-    dec = _Appender(grp.create_group("decisions"), _DECISION_COLS)
-    tracks = {d: _Appender(grp.create_group(f"track/{d}"), _TRACK_COLS) for d in dirs}
+    dec = _Appender(grp.create_group("decisions"), _DECISION_COLS, writer)
+    tracks = {d: _Appender(grp.create_group(f"track/{d}"), _TRACK_COLS, writer) for d in dirs}
+    # The truth copy is known now: written while the windows are replayed, not after.
+    for d in dirs:
+        if raw_truths[d] is not None:
+            g = grp.create_group(f"truth/{d}")
+            for k, v in zip(("t_s", "range_m"), raw_truths[d]):
+                v = np.asarray(v)
+                ds = g.create_dataset(k, shape=v.shape, dtype=v.dtype,
+                                      chunks=(max(1, min(_CHUNK, v.shape[0])),), **_FILTERS)
+                ds.attrs["units"] = "s" if k == "t_s" else "m"
+                col = writer.column(ds)
+                writer.put((col, i, v[i:i + _CHUNK], None)
+                           for i in range(0, v.shape[0], _CHUNK))
     sstats = {n: _SensorStats() for n in names}
     dstats = {d: _DirStats() for d in dirs}
-    offsets = {n: 0 for n in log.sensors}
+    ws = W.WindowStats(rig, names, dirs, truths, edges, _truth_interp)
+    offsets = {n: 0 for n in log.sensors}  # each window's first row in the log, by sensor
+    index = {n: i for i, n in enumerate(names)}
     total = sum(info.n for info in log.sensors.values())
     bar = _Progress(total, os.path.basename(path), progress and total > 200_000)
     span = (math.inf, -math.inf)
     for window in log.iter_windows(window_s or _auto_window_s(log)):
         readings = {}
-        starts = {}
+        starts = np.zeros(len(names), np.int64)
         for name, stream in window.items():
             readings[name] = (stream.t_s, stream.raw, stream.ping_t_s)
-            starts[name] = offsets[name]
+            if name in index:
+                starts[index[name]] = offsets[name]
             offsets[name] += len(stream)
         b = fuser.process(readings)
         if len(b) == 0:
             continue
         b = b.in_time_order()
-        sidx = b.sensor
-        rows = b.row + np.array([starts.get(names[i], 0) for i in range(len(names))])[sidx]
-        dec.append(sensor=sidx, row=rows, t_s=b.t_s, direction=b.direction, decision=b.code,
-                   flags=b.flags, innovation_m=b.innovation_m, nis=b.nis, branch=b.branch,
+        dec.append(sensor=b.sensor, row=b.row + starts[b.sensor], t_s=b.t_s,
+                   direction=b.direction, decision=b.code, flags=b.flags,
+                   innovation_m=b.innovation_m, nis=b.nis, branch=b.branch,
                    branch_prob=b.branch_prob, loglik=b.loglik, z_far_m=b.z_m[:, 0],
                    z_near_m=b.z_m[:, 1], sigma_far_m=b.sigma_m[:, 0],
                    sigma_near_m=b.sigma_m[:, 1], temp_c=b.temp_c)
         fin = np.isfinite(b.t_s)
         if fin.any():
             span = (min(span[0], float(b.t_s[fin].min())), max(span[1], float(b.t_s[fin].max())))
-        _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks)
+        _accumulate(b, names, dirs, truths, sstats, dstats, tracks, ws)
         bar.add(len(b))
     dec.flush()
     for tr in tracks.values():
         tr.flush()
+    writer.wait()  # the smoothing reads the track back
     if smooth:
         for di, d in enumerate(dirs):
             _smooth_track(grp[f"track/{d}"], rig.estimator.accel_psd, truths[d], edges[d],
                           dstats[d])
-    for d in dirs:
-        if truths[d] is not None:
-            g = grp.create_group(f"truth/{d}")
-            for k, v in zip(("t_s", "range_m"), log.truth(d)):
-                g.create_dataset(k, data=v, **_FILTERS).attrs["units"] = "s" if k == "t_s" else "m"
     return {"n": dec.n, "sensors": sstats, "dirs": dstats, "has_truth": has_truth, "span": span}
 
 
-def _accumulate(b, names, dirs, rig, truths, edges, sstats, dstats, tracks):
-    code = b.code
-    ns, nc = len(names), len(D.NAMES)
-    acc = code < D.FIRST_REJECT
-    # a re-acquiring reading's NIS is against the track it overturned: not a sample
-    nis_ok = acc & np.isfinite(b.nis) & (code != D.REACQUIRED)
-    nis0 = np.where(nis_ok, b.nis, 0.0)
-    counts = np.bincount(b.sensor.astype(np.int64) * nc + code, minlength=ns * nc).reshape(ns, nc)
-    s_nis = np.bincount(b.sensor, weights=nis0, minlength=ns)
-    s_nisn = np.bincount(b.sensor, weights=nis_ok, minlength=ns)
-    s_flag = {bit: np.bincount(b.sensor, weights=(b.flags & bit) != 0, minlength=ns)
-              for bit in D.FLAG_NAMES}
-    fb_flag = (b.flags & D.FLAG_TEMP_FALLBACK) != 0
-    for si, name in enumerate(names):
-        st = sstats[name]
-        ms = b.sensor == si
-        if ms.any():
-            st.add_times(b.t_s[ms], fb_flag[ms])
-        st.counts += counts[si]
-        st.nis_sum += float(s_nis[si])
-        st.nis_n += int(s_nisn[si])
-        for bit, fname in D.FLAG_NAMES.items():
-            c = int(s_flag[bit][si])
+def _accumulate(b, names, dirs, truths, sstats, dstats, tracks, ws):
+    """Fold one window's decisions (`b`, in time order) into the running diagnostics and
+    append its track rows; the per-reading work is `_window_stats.window_stats`.
+
+    Against truth, the estimate a user would have read at every reading of a direction
+    is scored (predicted to its time), not only at fused ones: a track that is rejecting
+    everything is still wrong while it does."""
+    st = [sstats[name] for name in names]
+    t_first = np.array([s.t_first for s in st])
+    t_last = np.array([s.t_last for s in st])
+    n_t = np.array([s.n_t for s in st], np.int64)
+    gap_s = np.array([s.gap_s for s in st])
+    gap_from = np.array([s.gap_from_s for s in st])
+    ws.run(b, t_first, t_last, n_t, gap_s, gap_from)
+    for si, s in enumerate(st):
+        s.t_first, s.t_last, s.n_t = float(t_first[si]), float(t_last[si]), int(n_t[si])
+        s.gap_s, s.gap_from_s = float(gap_s[si]), float(gap_from[si])
+        s._fallback_span(float(ws.fb_lo[si]), float(ws.fb_hi[si]))
+        s.counts += ws.counts[si]
+        s.nis_sum += float(ws.s_nis[si])
+        s.nis_n += int(ws.s_nisn[si])
+        for j, fname in enumerate(D.FLAG_NAMES.values()):
+            c = int(ws.s_flag[si, j])
             if c:
-                st.flag_counts[fname] = st.flag_counts.get(fname, 0) + c
-    if any(t is not None for t in truths.values()):
-        # The candidate each reading was fused as (the far one unless the near was chosen).
-        near = b.branch == 1
-        zsel = np.where(near, b.z_m[:, 1], b.z_m[:, 0])
-        ssel = np.where(near, b.sigma_m[:, 1], b.sigma_m[:, 0])
-        is_ir = np.array([rig.sensors[n].kind == "triangulation" for n in names])[b.sensor]
+                s.flag_counts[fname] = s.flag_counts.get(fname, 0) + c
     for di, d in enumerate(dirs):
-        m = b.direction == di
         ds = dstats[d]
-        am = m & acc
-        fin = m & nis_ok
-        ds.nis_sum += float(nis0[fin].sum())
-        ds.nis_n += int(fin.sum())
-        ds.loglik += float(np.nansum(b.loglik[am]))
-        ds.white.add(np.sign(b.innovation_m[fin]) * np.sqrt(b.nis[fin]))
-        two = am & np.isfinite(b.z_m[:, 1]) & np.isfinite(b.z_m[:, 0])
-        ds.amb_readings += int(two.sum())
-        ds.amb_unresolved += int((two & (code == D.AMBIGUOUS)).sum())
-        ds.reacquired += int((m & (code == D.REACQUIRED)).sum())
-        # track rows: one per fused reading of this direction
-        x = b.state[am]
-        ca = code[am]
-        tflags = (np.where(b.p_major[am] < rig.estimator.ambiguous_below, TRACK_MULTIMODAL, 0)
-                  | np.where(ca == D.REACQUIRED, TRACK_REACQUIRED, 0)
-                  | np.where((b.flags[am] & D.FLAG_TEMP_FALLBACK) != 0, TRACK_TEMP_FALLBACK, 0))
-        tracks[d].append(t_s=b.t_state_s[am], range_m=x[:, 0], sigma_m=np.sqrt(x[:, 2]),
-                         rate_mps=x[:, 1], rate_sigma_mps=np.sqrt(x[:, 4]), cov_rr_m2=x[:, 2],
-                         cov_rv_m2ps=x[:, 3], cov_vv_m2ps2=x[:, 4], p_major=b.p_major[am],
-                         n_hypotheses=b.n_hyp[am], flags=tflags.astype(np.int8))
+        k_nis, k_fused = int(ws.d_int[di, W.D_NIS_N]), int(ws.d_int[di, W.D_FUSED])
+        # numpy's pairwise sums over the values in reading order: the same floats as
+        # summing the masked columns
+        ds.nis_sum += float(ws.vals[di, W.V_NIS, :k_nis].sum())
+        ds.nis_n += k_nis
+        ds.loglik += float(ws.vals[di, W.V_LOGLIK, :k_fused].sum())
+        ds.white.add(ws.vals[di, W.V_WHITE, :k_nis])
+        ds.amb_readings += int(ws.d_int[di, W.D_AMB])
+        ds.amb_unresolved += int(ws.d_int[di, W.D_AMB_UNRESOLVED])
+        ds.reacquired += int(ws.d_int[di, W.D_REACQ])
+        if k_fused:  # views of the kernel's buffers, copied by the appender
+            cols = {c: ws.track_f[di, j, :k_fused] for j, c in enumerate(W.TRACK_F)}
+            cols.update({c: ws.track_i[di, j, :k_fused] for j, c in enumerate(W.TRACK_I)})
+            tracks[d].append(**cols)
         if truths[d] is None:
             continue
-        # Score the estimate a user would have read at every reading of the direction
-        # (predicted to its time), not only at fused ones: a track that is rejecting
-        # everything is still wrong while it does.
-        im = np.flatnonzero(m)
-        tm = b.t_meas_s[im]
-        trm = _truth_interp(truths[d], tm)
-        zone = M.zone_of(trm, edges[d])
-        xs = b.state[im]
-        seen = np.isfinite(tm) & np.isfinite(xs[:, 0])
-        dtp = np.zeros(len(im))
-        dtp[seen] = np.maximum(tm[seen] - b.t_state_s[im][seen], 0.0)
-        r_pred, s_pred = M.predict_range(xs[:, 0], xs[:, 1], xs[:, 2], xs[:, 3], xs[:, 4], dtp,
-                                         rig.estimator.accel_psd)
-        ds.err.add(np.where(seen, r_pred - trm, np.nan), s_pred, zone)
-        # branch correctness: IR readings below the peak (by truth) that were fused
-        below = is_ir[im] & (trm < edges[d][0]) & acc[im] & (b.branch[im] >= 0)
-        ds.branch_n += int(below.sum())
-        ds.branch_ok += int((below & near[im]).sum())
-        err_raw = np.where(acc[im], zsel[im] - trm, np.nan)
-        sens = b.sensor[im]
-        for si in np.unique(sens):
-            ms = sens == si
-            sstats[names[si]].raw_err.add(err_raw[ms], ssel[im][ms], zone[ms])
+        ds.err.add_sums(ws.err[di])
+        ds.branch_n += int(ws.d_int[di, W.D_BRANCH_N])
+        ds.branch_ok += int(ws.d_int[di, W.D_BRANCH_OK])
+        for si, name in enumerate(names):
+            sstats[name].raw_err.add_sums(ws.raw_err[di, si])
 
 
 def _smooth_track(g, q, truth, edges, ds, block=1_000_000):

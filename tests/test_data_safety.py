@@ -96,6 +96,27 @@ def test_replay_killed_part_way_leaves_no_output(folder, monkeypatch, capsys):
     assert _listing(folder) == before
 
 
+def test_track_writer_failing_part_way_leaves_no_output(folder, monkeypatch, capsys):
+    # The track file's chunks are written on a worker thread: its failure must reach
+    # the command like any other, and the partial file must go.
+    before = _listing(folder)
+    calls = []
+    real = replay_run._ChunkWriter._write
+
+    def disk_full(self, *args):
+        calls.append(1)
+        if len(calls) == 3:
+            raise OSError(28, "No space left on device")
+        return real(self, *args)
+
+    monkeypatch.setattr(replay_run._ChunkWriter, "_write", disk_full)
+    code, _out, err = _cli(capsys, ["replay", str(folder / "run.h5"), "--window", "5",
+                                    "-o", str(folder / "new.track.h5")])
+    assert len(calls) >= 3
+    assert code == 2 and len(err) == 1 and "No space left on device" in err[0], err
+    assert _listing(folder) == before
+
+
 @pytest.mark.parametrize("argv", [
     ["simulate", SCENARIO, "-o", "{d}/new.h5"],
     ["import", "{d}/run.csv", "--rig", "{d}/rig.toml", "-o", "{d}/new.h5"],
