@@ -6,7 +6,8 @@ free-running so they hear each other: about 700 000 readings). Timed:
 
 * `replay.simulate.simulate` and writing the log;
 * `replay.run.run(log, out=...)`: reading, decoding, screening, the kernel, the
-  diagnostics and the track file, as the ``rangefuse replay`` command does it;
+  diagnostics and the track file (written on a second thread), as the ``rangefuse
+  replay`` command does it; wall-clock and CPU time of both threads;
 * the core alone on the whole log (`Fuser.prepare` + `Fuser.run_prepared` on every
   reading at once), to show how much of the replay is the estimator.
 
@@ -114,10 +115,17 @@ def main(argv=None):
              if scaled != 1 else "")
           + f"  [target <= 5 s for one hour on one core: "
           f"{C.verdict(t_run_s * scaled <= 5.0) if scaled == 1 else 'n/a with --quick'}]")
+    # The track file is written on a second thread, so the replay's CPU time exceeds its
+    # wall-clock time; the baseline would write on that thread too. Both ratios are
+    # printed and the lower one is judged.
     ratio = est_base / t_run_s
-    print(f"ratio, baseline replay / replay.run: {ratio:,.1f}x  (baseline run on the first "
-          f"{t_end:g} s and scaled per reading)  [target >= 50x: "
-          f"{C.verdict(ratio >= 50 and equal_work)}]")
+    est_base_cpu = t_run.cpu_best - t_kern.cpu_best + n * 1e-6 * (1e6 * t_base.cpu_best / nb)
+    ratio_cpu = est_base_cpu / t_run.cpu_best
+    print(f"replay CPU time (both threads): {t_run.cpu_best:.2f} s  [on one core this would "
+          f"still be <= 5 s: {C.verdict(t_run.cpu_best * scaled <= 5.0)}]")
+    print(f"ratio, baseline replay / replay.run: {ratio:,.1f}x wall-clock, {ratio_cpu:,.1f}x "
+          f"CPU  (baseline run on the first {t_end:g} s and scaled per reading)  "
+          f"[target >= 50x: {C.verdict(min(ratio, ratio_cpu) >= 50 and equal_work)}]")
 
 
 if __name__ == "__main__":
