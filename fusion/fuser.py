@@ -185,9 +185,10 @@ class Fuser:
         mix = [echo_mixture(s) if s.kind == "echo" else None for s in sens]
         self._p_blank_drop = np.array([m.p_blank_dropout if m else 0.0 for m in mix])
         self._p_drop = np.array([m.w_max if m else 0.0 for m in mix])
-        # where an IR ranger's "nothing seen" ends (a witness against a track inside it)
-        self._far = np.array([s.curve.max_range_m + s.offset_m if s.kind == "triangulation"
-                              else np.inf for s in sens])
+        # where an IR ranger's "nothing seen" speaks against a track (a witness for
+        # re-acquisition beyond its span): between the near-side range of the voltage at
+        # the far end of the span and that far end
+        self._span = np.array([_ir_span(s) for s in sens])
         c_fast, c_slow = speed_of_sound(60.0), speed_of_sound(-40.0)
         self._tau_min = np.array([2 * getattr(s, "min_range_m", 0.0) / c_fast for s in sens])
         self._tau_max = np.array([2 * getattr(s, "max_range_m", 0.0) / c_slow for s in sens])
@@ -437,10 +438,10 @@ class Fuser:
         st = self.state
         K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv,
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
-                     self._far, self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
+                     self._span, self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
                      st["T_SRC"], st["LAST_T"], st["AHEAD"], st["LEAP"],
-                     st["CLOCK_ODD"],
+                     st["CLOCK_ODD"], st["SEEN_T"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
@@ -537,6 +538,18 @@ class Fuser:
                         float(mom[1]), float(math.sqrt(mom[4])), float(st["W"][d, :nh].max()), nh)
 
 
+def _ir_span(s):
+    """``(lo, hi)`` from the direction's reference point where an IR triangulation
+    ranger's target gives more than the voltage at the far end of its span; ``(inf,
+    -inf)`` for other sensors."""
+    if s.kind != "triangulation":
+        return (math.inf, -math.inf)
+    c = s.curve
+    near, _ = c.ranges(float(c.volts(c.max_range_m)))
+    lo = float(near) if np.isfinite(near) else -math.inf
+    return (lo + s.offset_m, c.max_range_m + s.offset_m)
+
+
 def _processing_order(sensor, t_meas, ping):
     """Time order; invalid times first (decided harmlessly). Ties go to the earlier ping
     (two echo readings at one instant: the unit that pinged first heard its own sound),
@@ -547,7 +560,10 @@ def _processing_order(sensor, t_meas, ping):
     # share a time do the tie-breaks matter, and then the full three-key sort decides.
     starts = np.flatnonzero(sensor[1:] != sensor[:-1]) + 1
     order = np.empty(key.shape[0], np.int64)
-    if not _merge_runs(key, np.concatenate(([0], starts, [key.shape[0]])), order):
+    # (a merge costs readings x runs: with many runs, readings interleaved by a caller,
+    # the sort is the cheaper one)
+    if starts.size > _MERGE_RUNS_MAX or \
+            not _merge_runs(key, np.concatenate(([0], starts, [key.shape[0]])), order):
         order = np.argsort(key, kind="stable")
     ks = key[order]
     tie = ks[1:] == ks[:-1]
@@ -561,6 +577,9 @@ def _processing_order(sensor, t_meas, ping):
     if bool(np.all((pa < pb) | ((pa == pb) & (sensor[a] <= sensor[b])))):
         return order
     return np.lexsort((sensor, pkey, key))
+
+
+_MERGE_RUNS_MAX = 32
 
 
 @njit(cache=True)

@@ -388,6 +388,26 @@ def test_an_ir_ranger_that_still_sees_the_target_gives_no_witness():
                       == D.REACQUIRED)
 
 
+@pytest.mark.parametrize("ghost_m", [1.0, 1.6])
+def test_an_ir_ranger_that_never_saw_the_target_is_no_witness(ghost_m):
+    # A dark (or clear) target the IR ranger cannot see, tracked by the echo ranger at
+    # 0.5 m: the IR ranger's steady "nothing" says nothing about the track, so a pair of
+    # multipath ghosts beyond its span (at twice the range, or farther) stays rejected
+    # and the track stays (multipath: Thrun, Burgard & Fox, Probabilistic Robotics,
+    # 2005, §6.3, from memory).
+    rig = _rig([_ir(), _echo()], **REACQ)
+    rng = np.random.default_rng(5)
+    t_ir, t_echo = np.arange(150) * 0.02, np.arange(60) * 0.05 + 0.003
+    v = 0.1 + rng.normal(0.0, 0.01, t_ir.size)
+    r = 0.5 + rng.normal(0.0, 0.003, t_echo.size)
+    r[30:32] = ghost_m + rng.normal(0.0, 0.003, 2)
+    b = Fuser(rig).process({"ir": (t_ir, v), "echo": (t_echo, _tof(r))}).in_time_order()
+    echo = b.code[b.sensor == 1]
+    assert list(echo[30:32]) == [D.GATED, D.GATED]
+    assert not np.any(b.code == D.REACQUIRED)
+    assert np.all(np.abs(b.state[5:, 0] - 0.5) < 0.02)
+
+
 def test_isolated_spikes_never_restart_the_track():
     rig = _rig([_echo()], **REACQ)
     rng = np.random.default_rng(8)

@@ -66,6 +66,7 @@ def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
         "LAST_T": np.full(n_sensor, -np.inf),
         "AHEAD": np.zeros(n_sensor, np.int64), "LEAP": np.zeros(n_sensor, np.int64),
         "CLOCK_ODD": np.zeros(1, np.int64),      # sensors marked leapt or ahead
+        "SEEN_T": np.full(n_sensor, -np.inf),    # an IR ranger's last fused reading
         "T_SRC": np.full(n_dir, -1, np.int64),   # the sensor whose reading set T
     }
 
@@ -241,11 +242,10 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
             continue
         sa = math.sqrt(RBV[d, n - 1, anchor])
         m = 0
-        witness = -1  # a sensor that saw nothing where the track is, beyond which `a` lies
+        witness = False  # a sensor saw nothing where the track is, and `a` lies beyond
         for i in range(n):
             if RBV[d, i, 0] < 0.0:
-                if a >= RBZ[d, i, 0]:
-                    witness = RBS[d, i]
+                witness |= a >= RBZ[d, i, 0]
                 continue
             best = 0
             if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
@@ -260,11 +260,15 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
                 tc[m] = RBT[d, i]
                 sc[m] = RBS[d, i]
                 m += 1
-        several = m > 0 and witness >= 0 and witness != sc[0]
+        several = False
         for i in range(1, m):
             if sc[i] != sc[0]:
                 several = True
                 break
+        if m > 0 and witness and not several:
+            for i in range(n):
+                if RBV[d, i, 0] < 0.0 and a >= RBZ[d, i, 0] and RBS[d, i] != sc[0]:
+                    several = True
         if m < (nfew if several else nmin):
             continue
         sw = 0.0
@@ -411,9 +415,9 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
 
 @njit(cache=True)
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
-               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, sens_far, par,
-               W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
-               T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
+               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, sens_span,
+               par, W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
+               T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD, SEEN_T,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                o_nh, o_tt):
     """Run the Gaussian-sum Kalman estimator over events in the order `order`, in place.
@@ -677,15 +681,19 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                                 bestw = CW[j]
                                 innov = CY[j]
                                 nis = CNIS[j]
-        elif code == OUT_OF_RANGE and (flags & FLAG_NO_TARGET) != 0 and NH[d] > 0:
-            # An IR ranger that sees nothing where the whole track lies (well inside its
-            # span) contradicts the track: a witness for re-acquisition beyond the span.
-            inside = sens_far[s] < math.inf
+        elif code == OUT_OF_RANGE and (flags & FLAG_NO_TARGET) != 0 and NH[d] > 0 \
+                and t - SEEN_T[s] <= reacq_w:
+            # An IR ranger that saw the target a moment ago and now sees nothing where
+            # the whole track lies (well inside the span where a target shows) contradicts
+            # the track: a witness for re-acquisition beyond the span. One that never saw
+            # it (a dark or clear target) is no witness.
+            inside = True
             for k in range(NH[d]):
-                if X[d, k, 0] + 3.0 * math.sqrt(P[d, k, 0, 0]) >= sens_far[s]:
+                sd3 = 3.0 * math.sqrt(P[d, k, 0, 0])
+                if not (X[d, k, 0] - sd3 > sens_span[s, 0] and X[d, k, 0] + sd3 < sens_span[s, 1]):
                     inside = False
             if inside:
-                _buffer_witness(d, t, s, sens_far[s], RBT, RBZ, RBV, RBS, RBN)
+                _buffer_witness(d, t, s, sens_span[s, 1], RBT, RBZ, RBV, RBS, RBN)
         elif code == DROPOUT and sens_kind[s] == KIND_ECHO and NH[d] > 1:
             # "Nothing heard": likely when the target is inside the blanking zone.
             nh = NH[d]
@@ -701,6 +709,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
             else:
                 for k in range(nh):
                     W[d, k] = 1.0 / nh
+        if code <= REACQUIRED and sens_kind[s] == KIND_IR:
+            SEEN_T[s] = t
         o_code[i] = code
         o_flags[i] = flags
         o_innov[i] = innov

@@ -70,7 +70,8 @@ Decisions
 Re-acquisition
     Gated readings go to the re-acquisition buffer of the Kalman path (both IR
     candidates; an accepted reading empties it): when ``reacquire_count`` mutually
-    consistent ones fall inside ``reacquire_window_s``, the particles are drawn afresh
+    consistent ones of one sensor, or two of two sensors, fall inside
+    ``reacquire_window_s``, the particles are drawn afresh
     around the line through them, in equal groups when two stories fit (decision
     *reacquired*, branch probability 1 / number of stories, as in the Kalman path).
 Determinism
