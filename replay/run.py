@@ -697,8 +697,12 @@ def _replay_one(log, rig, grp, smooth, window_s, progress, path, writer) -> dict
             g = grp.create_group(f"truth/{d}")
             for k, v in zip(("t_s", "range_m"), raw_truths[d]):
                 v = np.asarray(v)
+                if not v.shape[0]:  # an empty truth stream: nothing to hand the writer
+                    g.create_dataset(k, data=v, **_FILTERS).attrs["units"] = \
+                        "s" if k == "t_s" else "m"
+                    continue
                 ds = g.create_dataset(k, shape=v.shape, dtype=v.dtype,
-                                      chunks=(max(1, min(_CHUNK, v.shape[0])),), **_FILTERS)
+                                      chunks=(min(_CHUNK, v.shape[0]),), **_FILTERS)
                 ds.attrs["units"] = "s" if k == "t_s" else "m"
                 col = writer.column(ds)
                 writer.put((col, i, v[i:i + _CHUNK], None)

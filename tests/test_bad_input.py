@@ -331,6 +331,20 @@ def test_empty_log(tmp_path, capsys):
     assert not (tmp_path / "x.h5").exists()
 
 
+def test_an_empty_truth_stream_replays(tmp_path, capsys):
+    # A log may carry a truth group with no samples (a run whose reference failed):
+    # the replay scores nothing against it and still writes the track and its copy.
+    path = str(tmp_path / "no-truth-samples.h5")
+    write_log(path, RIG_TOML, [SensorStream(n, **p) for n, p in _parts().items()],
+              {"air": ("air_temperature", np.arange(4.0), np.full(4, 21.0))},
+              {"front": (np.zeros(0), np.zeros(0))}, created_utc=WHEN)
+    track = str(tmp_path / "t.h5")
+    assert main(["replay", path, "-o", track]) == 0
+    with h5py.File(track, "r") as f:
+        assert f["truth/front/t_s"].shape == (0,)
+        assert f["decisions/decision"].shape == (320,)
+
+
 def test_huge_gap(tmp_path, capsys):
     parts = _parts()
     for name in parts:
