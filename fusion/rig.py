@@ -187,8 +187,9 @@ class EstimatorConfig:
             return "max_hypotheses", "max_hypotheses must be 1..8"
         if not 0 < self.near_prior < 1:
             return "near_prior", "near_prior must be strictly between 0 and 1"
-        if self.reacquire_count < 2:
-            return "reacquire_count", "reacquire_count must be >= 2"
+        if not 2 <= self.reacquire_count <= 15:
+            # the re-acquisition buffer holds 16 entries, one of them kept for a witness
+            return "reacquire_count", "reacquire_count must be 2..15"
         if self.particles < 10:
             return "particles", "particles must be >= 10"
         for k in ("accel_psd", "init_rate_sigma_mps", "reacquire_window_s", "max_lag_s",

@@ -369,9 +369,11 @@ def _stuck_scan(values, usable, t, limit, hold_s, cont0, carry_t, carry_n, stuck
         prev = v
         cycles = float(count)
         if hold_s > 0:
-            c = math.floor((t[i] - t_first) / hold_s) + 1.0
-            if c < cycles or math.isnan(c):  # as np.minimum: a NaN bound is never stuck
-                cycles = c
+            x = (t[i] - t_first) / hold_s
+            if math.isnan(x):
+                cycles = math.nan  # as np.minimum: a NaN bound is never stuck
+            else:
+                cycles = min(cycles, math.floor(x) + 1.0)
         stuck[i] = cycles >= limit
     return t_first, count
 

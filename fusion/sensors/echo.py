@@ -444,7 +444,8 @@ class EchoRanger:
         # across calls (a stream of garbage could grow the memo without bound: it is reset)
         seen = self._frame_memo
         if len(seen) > _FRAME_MEMO_MAX:
-            seen.clear()
+            # a new memo, not clear(): another fuser of this rig may be using this one
+            seen = self.__dict__["_frame_memo"] = {}
         try:
             # set and map run in C: only the frames not met before are parsed here
             for f in set(frames).difference(seen):
