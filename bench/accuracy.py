@@ -222,6 +222,16 @@ def evaluate(src, tmp):
     # diagnostic: how many of the fused crosstalk readings screening had flagged suspect
     out["crosstalk_fused_flagged"] = int((xt & fused & ((dec["flags"] & D.FLAG_CROSSTALK_SUSPECT)
                                                         != 0)).sum())
+    # diagnostic: how far the fused crosstalk readings lay from truth (a crosstalk echo
+    # can land on the true range; then no screen can tell it and it does no harm)
+    err = []
+    for i in np.flatnonzero(xt & fused):
+        s = rig.sensors[names[dec["sensor"][i]]]
+        if truth.get(s.direction) is not None:
+            tr = np.interp(dec["t_s"][i] - s.latency_s, *truth[s.direction])
+            err.append(abs(dec["z_far_m"][i] - tr))
+    out["crosstalk_fused_err_mm"] = (1e3 * float(np.median(err)), 1e3 * float(np.max(err))) \
+        if err else None
 
     # near-zone branch
     br = {"n_cand": 0, "n_valid": 0, "fused": 0, "correct": 0, "rejected": 0,
@@ -351,7 +361,10 @@ def main(argv=None):
         if r["good_rejected_by"] or r["crosstalk_fused_as"] or r["branch"]["rejected_by"]:
             print(f"  {r['name']}: good readings rejected as {r['good_rejected_by'] or '-'}; "
                   f"crosstalk fused as {r['crosstalk_fused_as'] or '-'} "
-                  f"({r['crosstalk_fused_flagged']} of them flagged suspect); near-zone IR "
+                  f"({r['crosstalk_fused_flagged']} of them flagged suspect"
+                  + ("; |reading - truth| median {:.1f} mm, max {:.1f} mm".format(
+                      *r["crosstalk_fused_err_mm"]) if r["crosstalk_fused_err_mm"] else "")
+                  + "); near-zone IR "
                   f"readings with a valid echo rejected as {r['branch']['rejected_by'] or '-'}")
     print()
 
