@@ -739,7 +739,16 @@ class FilterpyKalman:
                     ok = False
                     break
             if ok:
-                out.append((zm + slope * (0.0 - tm), slope, 1.0 / sw))
+                # the slope weighed against the new track's prior rate, 0 +- init_rate
+                r0 = self.init_rate
+                prior = 1.0 / (r0 * r0) if r0 > 0 else math.inf
+                if math.isinf(prior):
+                    rate, var_rate = 0.0, 0.0
+                else:
+                    var_rate = 1.0 / (prior + stt)
+                    rate = slope * stt * var_rate
+                out.append((zm + rate * (0.0 - tm), rate, 1.0 / sw + tm * tm * var_rate,
+                            var_rate))
         return out
 
     def _clock(self, code, d, s, t):
@@ -937,8 +946,7 @@ class FilterpyKalman:
                             npass = len(ra)
                             self.comps[d] = [[1.0 / npass,
                                               self._put(d, k, a[0], a[1], a[2] * self.reacq_n,
-                                                        0.0, 0.0,
-                                                        self.init_rate * self.init_rate)]
+                                                        0.0, 0.0, a[3])]
                                              for k, a in enumerate(ra)]
                             self.rb[d] = []
                             code = K.REACQUIRED

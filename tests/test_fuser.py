@@ -336,6 +336,18 @@ def test_two_rangers_that_agree_restart_the_track_at_the_second_reading():
                             "b": (t[who == 1], _tof(r[who == 1]))}).in_time_order()
     assert list(b.code[jump:jump + 2]) == [D.GATED, D.REACQUIRED]
     assert np.all(b.code[:jump] == D.ACCEPTED) and np.all(b.code[jump + 2:] == D.ACCEPTED)
+    # Two readings 25 ms apart fix a slope only to about 0.2 m/s (3 mm each), and the
+    # target stands still: the new track's rate is that slope weighed against the prior
+    # rate of a new track, 0 +- init_rate_sigma_mps, in information form (common
+    # practice, no source) - not the raw slope, which would restart the track again.
+    rig_prior = rig.estimator.init_rate_sigma_mps
+    i = jump + 1
+    d0 = b.z_m[jump, 0] - b.z_m[i, 0]
+    dt = b.t_s[i] - b.t_s[jump]
+    v_slope = (b.sigma_m[jump, 0] ** 2 + b.sigma_m[i, 0] ** 2) / dt ** 2
+    w_slope, w_prior = 1.0 / v_slope, 1.0 / rig_prior ** 2
+    assert b.state[i, 1] == pytest.approx(-d0 / dt * w_slope / (w_slope + w_prior), rel=1e-9)
+    assert b.state[i, 4] == pytest.approx(1.0 / (w_slope + w_prior), rel=1e-9)
     # a and b each report a different short range after the jump: no common story, and
     # each alone has fewer than reacquire_count readings in the window
     r2 = r.copy()

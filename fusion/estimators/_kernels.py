@@ -204,7 +204,7 @@ def _buffer_witness(d, t, s, far, RBT, RBZ, RBV, RBS, RBN):
 
 
 @njit(cache=True)
-def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
+def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, rate_sigma, out):
     """Do the rejected readings of the last `window` seconds tell one consistent story?
 
     Each buffered reading has one or two candidates. For each candidate of the newest
@@ -217,8 +217,13 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
     rate no faster than `vmax`.
     Readings outside the story (crosstalk, clutter) do not spoil it. A witness (an IR
     ranger that saw nothing inside its span, see `_buffer_witness`) joins every story
-    beyond its span as a second sensor, without a range to fit. Returns how many
-    anchors pass; ``out[k]`` = (range now, rate, variance of the range).
+    beyond its span as a second sensor, without a range to fit.
+
+    The new track's rate is the line's slope weighed against the prior rate of a new
+    track (0 with sigma `rate_sigma`): two readings a few milliseconds apart give a
+    slope of metres per second from their noise alone, which the prior then outweighs.
+    Returns how many anchors pass; ``out[k]`` = (range now, rate, variance of the
+    range, variance of the rate).
     """
     n = RBN[d]
     j = 0
@@ -298,9 +303,17 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, out):
                 ok = False
                 break
         if ok:
-            out[npass, 0] = zm + slope * (0.0 - tm)
-            out[npass, 1] = slope
-            out[npass, 2] = 1.0 / sw
+            # slope ~ N(rate, 1/stt) with the prior rate ~ N(0, rate_sigma^2)
+            prior = 1.0 / (rate_sigma * rate_sigma) if rate_sigma > 0 else math.inf
+            if math.isinf(prior):
+                rate, var_rate = 0.0, 0.0
+            else:
+                var_rate = 1.0 / (prior + stt)
+                rate = slope * stt * var_rate
+            out[npass, 0] = zm + rate * (0.0 - tm)
+            out[npass, 1] = rate
+            out[npass, 2] = 1.0 / sw + tm * tm * var_rate
+            out[npass, 3] = var_rate
             npass += 1
     return npass
 
@@ -456,7 +469,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
     used = np.empty(3 * MAXC, np.bool_)
     grp = np.empty(3 * MAXC, np.int64)
     mom = np.empty(5)
-    ra = np.empty((2, 3))
+    ra = np.empty((2, 4))
     jac = np.empty(2)
     for ii in range(n):
         i = order[ii]
@@ -564,7 +577,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     ll = math.log(o_dens)
                     code = CROSSTALK if suspect else GATED
                     _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
-                    npass = _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n, reacq_w, vmax, ra)
+                    npass = _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n, reacq_w, vmax,
+                                         init_rate, ra)
                     if npass > 0:
                         NH[d] = npass
                         for k in range(npass):
@@ -574,7 +588,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                             P[d, k, 0, 0] = ra[k, 2] * reacq_n
                             P[d, k, 0, 1] = 0.0
                             P[d, k, 1, 0] = 0.0
-                            P[d, k, 1, 1] = init_rate * init_rate
+                            P[d, k, 1, 1] = ra[k, 3]
                         RBN[d] = 0
                         code = REACQUIRED
                         branch = 0

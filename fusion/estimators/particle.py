@@ -743,7 +743,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
     IDX = np.empty(npart, np.int64)
     pri = np.empty(9)
     mass = np.empty(2)
-    ra = np.empty((2, 3))
+    ra = np.empty((2, 4))
     for ii in range(n):
         i = order[ii]
         d = ev_dir[i]
@@ -817,7 +817,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                     nis = best_nis
                     K._buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
                     npass = K._reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n,
-                                           reacq_w, vmax, ra)
+                                           reacq_w, vmax, init_rate, ra)
                     if npass > 0:
                         # one equal group of particles per consistent story, with the
                         # Kalman path's spread (line-fit variance times the count)
@@ -825,7 +825,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                             k0 = (k * _group(npart, npass))
                             k1 = npart if k == npass - 1 else k0 + _group(npart, npass)
                             _fill(d, k0, k1, ra[k, 0], math.sqrt(ra[k, 2] * reacq_n),
-                                  ra[k, 1], init_rate, 1.0 / npart, R, V, W, RNG)
+                                  ra[k, 1], math.sqrt(ra[k, 3]), 1.0 / npart, R, V, W, RNG)
                         RBN[d] = 0
                         code = REACQUIRED
                         branch = 0
