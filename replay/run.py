@@ -409,7 +409,8 @@ class ReplayResult:
             if self.has_truth:
                 for label, tab in (("filtered", st.err.table()),) + (
                         (("smoothed", st.err_smooth.table()),) if self.smoothed else ()):
-                    L.append(f"  against truth ({label}):")
+                    L.append(f"  against truth ({label}" + (", at track rows" if label ==
+                                                            "smoothed" else "") + "):")
                     L.append(f"    {'zone':<8}{'n':>9}{'RMSE mm':>10}{'bias mm':>10}"
                              f"{'worst mm':>10}{'NEES':>10}{'2σ cover':>10}")
                     for z, row in tab.items():
@@ -424,6 +425,15 @@ class ReplayResult:
             L.append("rejections by reason: " + "; ".join(
                 f"{r} {sum(v.values())} ({', '.join(f'{k} {c}' for k, c in v.items())})"
                 for r, v in rej.items()))
+        flagged = {}
+        for name, st in self.sensors.items():
+            for fname, c in st.flag_counts.items():
+                if c and fname != "temp_fallback":  # that one has its own line below
+                    flagged.setdefault(fname, {})[name] = c
+        if flagged:
+            L.append("flags (docs/track-format.md): " + "; ".join(
+                f"{f} {sum(v.values())} ({', '.join(f'{k} {c}' for k, c in v.items())})"
+                for f, v in flagged.items()))
         fb = sum(st.flag_counts.get("temp_fallback", 0) for st in self.sensors.values())
         if fb:
             lo = min((st.fallback_from_s for st in self.sensors.values()
@@ -434,6 +444,12 @@ class ReplayResult:
             L.append(f"air temperature fallback (stale or missing stream) for {fb} "
                      f"readings{when}")
         for name, st in self.sensors.items():
+            n_in = int(st.counts.sum())
+            off = int(st.counts[D.GATED] + st.counts[D.CROSSTALK])
+            if n_in >= 20 and off > n_in // 2:
+                # most of a unit's readings disagreeing with the track is seldom the scene
+                L.append(f"{name}: {off} of {n_in} readings rejected as gated or crosstalk; "
+                         "does the rig describe this unit (output, units, offset, curve)?")
             quiet = st.silence()
             if quiet:
                 L.append(f"{name} was silent for {quiet[0]:.1f} s from {quiet[1]:.1f} s")

@@ -391,7 +391,7 @@ def _summary_numbers(text):
         m = re.search(r"Ljung-Box Q = \S+, p = (\S+)$", line)
         if m:
             out[d]["p"] = m.group(1)
-        m = re.match(r"\s+against truth \((\w+)\):", line)
+        m = re.match(r"\s+against truth \((\w+)[^)]*\):", line)
         if m:
             table = m.group(1)
         m = re.match(r"\s+all\s+(\d+)\s+(\S+)", line)
