@@ -615,6 +615,13 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
                         "optimum is flat there (a 95% interval spans about 1.9 in log-likelihood)")
     if fixed and intervals:
         message += "; sensor noise fitted to truth residuals (intervals only for the rest)"
+    if objective == "innovations" and has_truth:
+        # The likelihood fits the innovations; a target whose motion is not white
+        # acceleration (stops and steps) can pull the process noise to where truth says
+        # otherwise. The logs can say which.
+        message += ("; the logs carry truth: check the tuned rig against it with `rangefuse "
+                    "replay LOG --rig TUNED.toml` (RMSE, NEES), or fit to it with "
+                    "--objective truth")
     ll1, nis1, _ = prob.run(values)
     llf1 = prob.last_fused
     tuned = [dataclasses.replace(p, value=values[p.name]) for p in allp]
