@@ -222,6 +222,17 @@ class _Envelope:
         return 0.5 * (b["t0"] + b["t1"]), lo, hi
 
 
+def _break_at(t, v, at):
+    """The line ``(t, v)`` with a gap (a NaN point) just before each time in `at`: a
+    restarted track is a new track, and a line joining the two would draw a motion that
+    never happened."""
+    at = np.asarray(at, float)
+    if not (t.size and at.size):
+        return t, v
+    k = np.unique(np.searchsorted(t, at[(at > t[0]) & (at <= t[-1])], side="left"))
+    return np.insert(t, k, t[k]), np.insert(v.astype(float), k, np.nan)
+
+
 class _TruthCursor:
     """Interpolates a truth series at nondecreasing query times, reading it in slices."""
 
@@ -786,17 +797,17 @@ def _draw_track(data, dirs):
             ax.fill_between(tb, lo, hi, color=FUSED_COLOUR, alpha=BAND_ALPHA, lw=0, zorder=4,
                             gid=f"band:{d}")
             ylim_vals += [lo, hi]
-        tl, vl = info["fused_line"]
+        rt = info["restarts"]
+        tl, vl = _break_at(*info["fused_line"], rt[0])
         if tl.size:
             ax.plot(tl, vl, color=FUSED_COLOUR, lw=1.4, zorder=5, gid=f"fused:{d}")
         if info["smooth"] is not None and info["smooth"][0].size:
-            ax.plot(*info["smooth"], color=SMOOTH_COLOUR, lw=1.0, ls=(0, (4, 2)), zorder=6,
-                    gid=f"smoothed:{d}")
+            ax.plot(*_break_at(*info["smooth"], rt[0]), color=SMOOTH_COLOUR, lw=1.0,
+                    ls=(0, (4, 2)), zorder=6, gid=f"smoothed:{d}")
             any_smooth = True
         if info["truth"] is not None and info["truth"][0].size:
             ax.plot(*info["truth"], color=TRUTH_COLOUR, lw=0.8, zorder=7, gid=f"truth:{d}")
             ylim_vals.append(info["truth"][1])
-        rt = info["restarts"]
         if rt.shape[1]:
             ax.plot(rt[0], rt[1], ls="none", marker="|", ms=14, mew=1.6, color=FUSED_COLOUR,
                     zorder=8, gid=f"restart:{d}")
