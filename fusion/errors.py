@@ -23,6 +23,8 @@ class RangefuseError(Exception):
         Row (CSV, 1-based, header is row 1), TOML line, or dataset index (0-based).
     """
 
+    _row_word = "row"  # what the message calls `row`
+
     def __init__(self, message: str, *, file: str | None = None, field: str | None = None,
                  row: int | None = None):
         self.message = message
@@ -38,13 +40,16 @@ class RangefuseError(Exception):
         if self.field:
             where.append(str(self.field))
         if self.row is not None:
-            where.append(f"row {self.row}")
+            where.append(f"{self._row_word} {self.row}")
         prefix = ": ".join([", ".join(where)]) + ": " if where else ""
         return (prefix + self.message).replace("\n", " ")
 
 
 class ConfigError(RangefuseError):
-    """A rig, scenario or curve description (TOML) is malformed or inconsistent."""
+    """A rig, scenario or curve description (TOML) is malformed or inconsistent; its
+    `row` is the TOML line."""
+
+    _row_word = "line"
 
 
 class LogFormatError(RangefuseError):

@@ -409,7 +409,7 @@ def _rig_file(tmp_path, old, new, name="rig.toml"):
 ])
 def test_rig_toml_errors_name_the_key_and_line(tmp_path, capsys, old, new, field, words):
     path, line = _rig_file(tmp_path, old, new)
-    bits = [path, f"row {line}"] + ([field] if field else [])
+    bits = [path, f"line {line}"] + ([field] if field else [])
     _err_line(capsys, ["schedule", path], *bits, *words, debug_raises=ConfigError)
     with pytest.raises(ConfigError) as exc:
         Rig.load(path)
@@ -421,7 +421,7 @@ def test_rig_toml_errors_name_the_key_and_line(tmp_path, capsys, old, new, field
 def test_replay_with_a_bad_rig_file_names_it(tmp_path, capsys, good):
     path, line = _rig_file(tmp_path, 'hold_s = 0.03', 'hold_s = -1.0')
     _err_line(capsys, ["replay", good, "--rig", path, "-o", str(tmp_path / "t.h5")], path,
-              "sensor.ir.hold_s", f"row {line}", ">= 0")
+              "sensor.ir.hold_s", f"line {line}", ">= 0")
 
 
 SCENARIO = os.path.join(DATASETS, "faults", "dead.scenario.toml")
@@ -442,7 +442,7 @@ def test_scenario_toml_errors_name_the_key_and_line(tmp_path, capsys, old, new, 
     line = next(i + 1 for i, s in enumerate(text.splitlines()) if new.splitlines()[-1] in s)
     path = tmp_path / "bad.scenario.toml"
     path.write_text(text)
-    bits = [str(path), f"row {line}"] + ([field] if field else [])
+    bits = [str(path), f"line {line}"] + ([field] if field else [])
     _err_line(capsys, ["simulate", str(path), "-o", str(tmp_path / "x.h5")], *bits, *words,
               debug_raises=ConfigError)
     assert not (tmp_path / "x.h5").exists()
@@ -604,4 +604,6 @@ def test_every_error_type_is_the_project_family():
     for cls in (ConfigError, InputError, CalibrationError, LogFormatError):
         e = cls("what was expected", file="f", field="g", row=3)
         assert isinstance(e, RangefuseError) and (e.file, e.field, e.row) == ("f", "g", 3)
-        assert e.one_line() == "f, g, row 3: what was expected"
+        # a TOML description is read by line, the rest by row
+        word = "line" if cls is ConfigError else "row"
+        assert e.one_line() == f"f, g, {word} 3: what was expected"
