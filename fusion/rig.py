@@ -18,6 +18,15 @@ from . import _toml
 __all__ = ["Rig", "AirConfig", "EstimatorConfig", "ScheduleConfig"]
 
 
+def _table_line_of(text: str | None, name: str) -> int | None:
+    """1-based line of the table header ``[name]`` or ``[[name]]`` (for error messages)."""
+    pat = re.compile(r"\s*\[\[?\s*" + re.escape(name) + r"\s*\]")
+    for i, line in enumerate((text or "").splitlines()):
+        if pat.match(line):
+            return i + 1
+    return None
+
+
 def _line_of(text: str | None, *needles: str) -> int | None:
     """1-based line of the first line matching all needles in order (for error messages)."""
     if not text:
@@ -285,7 +294,7 @@ class Rig:
             if key not in allowed:
                 raise ConfigError(f"unknown top-level key {key!r}; expected one of "
                                   f"{', '.join(sorted(allowed))}", file=where, field=key,
-                                  row=_line_of(text, key))
+                                  row=_line_of(text, key) or _table_line_of(text, key))
         name = data.get("name", "rig")
         air = _take(AirConfig, data.get("air", {}), where, "air", text)
         est = _take(EstimatorConfig, data.get("estimator", {}), where, "estimator", text)

@@ -406,6 +406,7 @@ def _rig_file(tmp_path, old, new, name="rig.toml"):
      "sensor.echo.max_range_m", ("above min_range_m",)),
     ('name = "front"', 'name = "front"\n[estimator]\ngate_probability = 2.0',
      "estimator.gate_probability", ("(0.5, 1]",)),
+    ('[air]', '[aire]', "aire", ("unknown top-level key 'aire'",)),   # a misspelt table
 ])
 def test_rig_toml_errors_name_the_key_and_line(tmp_path, capsys, old, new, field, words):
     path, line = _rig_file(tmp_path, old, new)
