@@ -200,7 +200,9 @@ def _plot_bytes(result, fmt, title):
         chosen = cand.model == result.model
         label = (f"{cand.model} (AICc {cand.aicc:.1f}" + (", chosen)" if chosen else ")")
                  if math.isfinite(cand.aicc) else f"{cand.model} (AICc inf)")
-        ax.plot(grid, cand.curve.volts(grid), ls, color=color, lw=2.0 if chosen else 1.2,
+        # a table says nothing beyond its pairs: its line stops there
+        g = grid if cand.model != TABLE else grid[(grid >= r.min()) & (grid <= r.max())]
+        ax.plot(g, cand.curve.volts(g), ls, color=color, lw=2.0 if chosen else 1.2,
                 label=label)
         ax_res.plot(r, v - cand.fitted_volts, "o" if chosen else "x", ms=3.5 if chosen else 3,
                     color=color, alpha=1.0 if chosen else 0.6, label=cand.model)
