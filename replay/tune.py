@@ -99,8 +99,10 @@ class TuneResult:
         L += ["", f"  {'parameter':<34}{'before':>12}{'tuned':>12}{'95% interval':>26}"]
         for p0, p in zip(self.initial, self.params):
             lo, hi = self.ci95.get(p.name, (math.nan, math.nan))
-            L.append(f"  {p.name:<34}{p0.value:>12.4g}{p.value:>12.4g}"
-                     f"{'[' + format(lo, '.4g') + ', ' + format(hi, '.4g') + ']':>26}")
+            # no interval where the likelihood does not curve down along the parameter
+            iv = f"[{lo:.4g}, {hi:.4g}]" if np.isfinite(lo) and np.isfinite(hi) else \
+                "not a maximum here"
+            L.append(f"  {p.name:<34}{p0.value:>12.4g}{p.value:>12.4g}{iv:>26}")
         L.append("")
         L.append(f"  {'log-likelihood (nats)':<34}{'before':>12}{'tuned':>12}")
         L.append(f"  {'tuning objective (*)':<34}{self.loglik_before:>12.1f}{self.loglik_after:>12.1f}")
@@ -610,9 +612,14 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
                 (math.exp(xi - 1.96 * sdi), math.exp(xi + 1.96 * sdi))
         if kind == "conditional":
             message += "; curvature not positive definite: intervals hold the other parameters fixed"
-        if best_probe[0] > ll_tuned + 0.05:
-            message += (f"; a curvature probe scored {best_probe[0] - ll_tuned:.2f} higher: the "
-                        "optimum is flat there (a 95% interval spans about 1.9 in log-likelihood)")
+        gain = best_probe[0] - ll_tuned
+        if gain > 1.9:  # more than a 95 % interval spans: the search stopped short
+            message += (f"; a curvature probe (5 % from the tuned values) scored {gain:.2f} "
+                        "higher: the search stopped short of the maximum; the tuned values "
+                        "are a good fit, not the best one")
+        elif gain > 0.05:
+            message += (f"; a curvature probe scored {gain:.2f} higher: the optimum is flat "
+                        "there (a 95% interval spans about 1.9 in log-likelihood)")
     if fixed and intervals:
         message += "; sensor noise fitted to truth residuals (intervals only for the rest)"
     if objective == "innovations" and has_truth:
