@@ -111,8 +111,10 @@ def test_evaluation_counts_add_up_and_name_the_curvature(tuned_with_intervals):
     # A central-difference Hessian of k parameters takes f(x), f(x +- h e_i) and
     # f(x + h e_i + h e_j) for i < j: 1 + 2k + k(k-1)/2 evaluations (common practice,
     # no source). Here k = 6 (process noise and five sensor-noise terms).
+    # f(x) itself may already be known from the direct search that ended there.
     k = len(res.params)
-    assert parts["for the curvature (95% intervals)"] == 1 + 2 * k + k * (k - 1) // 2
+    full = 1 + 2 * k + k * (k - 1) // 2
+    assert parts["for the curvature (95% intervals)"] in (full, full - 1)
     text = res.summary()
     assert f"{res.n_evals} likelihood evaluations = " in text
     for n, what in res.eval_parts:
