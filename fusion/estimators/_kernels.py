@@ -162,21 +162,29 @@ def _move(d, i, j, RBT, RBZ, RBV, RBS):
         RBV[d, j, c] = RBV[d, i, c]
 
 
-@njit(cache=True)
-def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
-    """Append a rejected reading (both candidates, and its sensor) to the direction's
-    re-acquisition buffer, dropping the oldest when it is full."""
+@njit(cache=True, inline="always")
+def _new_slot(d, RBT, RBZ, RBV, RBS, RBN):
+    """Index of a new last entry of direction ``d``'s re-acquisition buffer (the oldest
+    dropped when it is full); the entry counts from now on."""
     m = RBN[d]
     if m == RB:
         for j in range(RB - 1):
             _move(d, j + 1, j, RBT, RBZ, RBV, RBS)
         m = RB - 1
+    RBN[d] = m + 1
+    return m
+
+
+@njit(cache=True)
+def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
+    """Append a rejected reading (both candidates, and its sensor) to the direction's
+    re-acquisition buffer, dropping the oldest when it is full."""
+    m = _new_slot(d, RBT, RBZ, RBV, RBS, RBN)
     RBT[d, m] = t
     RBS[d, m] = s
     for c in range(2):
         RBZ[d, m, c] = z[c]
         RBV[d, m, c] = sg[c] * sg[c]
-    RBN[d] = m + 1
 
 
 @njit(cache=True)
@@ -190,17 +198,14 @@ def _buffer_witness(d, t, s, far, RBT, RBZ, RBV, RBS, RBN):
             if j != i:
                 _move(d, i, j, RBT, RBZ, RBV, RBS)
             j += 1
-    if j == RB:
-        for i in range(RB - 1):
-            _move(d, i + 1, i, RBT, RBZ, RBV, RBS)
-        j = RB - 1
-    RBT[d, j] = t
-    RBS[d, j] = s
-    RBZ[d, j, 0] = far
-    RBZ[d, j, 1] = math.nan
-    RBV[d, j, 0] = -1.0  # marks a witness
-    RBV[d, j, 1] = math.nan
-    RBN[d] = j + 1
+    RBN[d] = j
+    m = _new_slot(d, RBT, RBZ, RBV, RBS, RBN)
+    RBT[d, m] = t
+    RBS[d, m] = s
+    RBZ[d, m, 0] = far
+    RBZ[d, m, 1] = math.nan
+    RBV[d, m, 0] = -1.0  # marks a witness
+    RBV[d, m, 1] = math.nan
 
 
 @njit(cache=True)
