@@ -60,6 +60,9 @@ class ImportReport:
     blank_lines : int
     written : bool
         Whether the log file was written.
+    silent : tuple of str
+        The rig's sensors that got no row (a rig for another robot, or a unit that was
+        not logged).
     """
 
     csv_path: str
@@ -69,6 +72,7 @@ class ImportReport:
     reported: tuple
     blank_lines: int
     written: bool
+    silent: tuple = ()
 
     def summary_line(self) -> str:
         n = self.blank_lines
@@ -244,7 +248,8 @@ def import_csv(csv_path, rig, rig_toml: str, out_path, *, strict: bool = False,
             raise InputError(f"cannot parse CSV: {exc}", file=csv_path, row=row) from None
 
     report = dict(csv_path=csv_path, out_path=out_path, rows_in=rows_in, stored=stored,
-                  reported=tuple(reported), blank_lines=blank)
+                  reported=tuple(reported), blank_lines=blank,
+                  silent=tuple(n for n, col in columns.items() if not col.t))
     if stored == 0 or (strict and reported):
         return ImportReport(**report, written=False)
 
@@ -319,6 +324,9 @@ def run(args) -> int:
         print(f"rangefuse import: ... and {len(report.reported) - limit} more bad rows not shown "
               "(--max-report 0 shows all)", file=sys.stderr)
     print(report.summary_line())
+    if report.silent and report.stored:
+        print(f"note: no rows for the rig's {', '.join(report.silent)}: is this the rig of "
+              "the robot that made the log?")
     if report.written:
         print(f"wrote {report.out_path}")
         return 0

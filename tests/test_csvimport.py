@@ -84,6 +84,11 @@ def test_three_column_header(tmp_path, rig, capsys):
     code, out, _ = _run(capsys, ["import", csv_path, "--rig", rig, "-o", str(tmp_path / "a.h5")])
     assert code == 0
     assert "read 2 rows: 2 stored, 0 reported" in out
+    # the rig's other units got no row: perhaps it is another robot's rig
+    assert "note: no rows for the rig's echo_front, echo_serial" in out
+    code, out, _ = _run(capsys, ["import", _csv(tmp_path, GOOD, "all.csv"), "--rig", rig,
+                                 "-o", str(tmp_path / "b.h5")])
+    assert code == 0 and "note:" not in out
 
 
 BAD = (
