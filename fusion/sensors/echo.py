@@ -39,6 +39,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass, fields
+import functools
 from functools import cached_property
 from typing import ClassVar
 
@@ -542,18 +543,26 @@ def _parse_frame(rx, frame, unit):
 
 def _speed_by_runs(temp, rh):
     """`speed_of_sound` per reading, computed once per run of equal air (the temperature
-    holds from one air sample to the next, so a window has far fewer runs than readings)."""
+    holds from one air sample to the next, so a window has far fewer runs than readings).
+    A few readings (a push) take it from a small memo of recent air: a call on one
+    reading costs some forty numpy operations."""
     n = temp.shape[0]
-    if n > 8:
-        new = np.empty(n, bool)
-        new[0] = True
-        np.not_equal(temp[1:], temp[:-1], out=new[1:])
-        new[1:] |= rh[1:] != rh[:-1]
-        starts = np.flatnonzero(new)
-        if starts.size <= n // 4:
-            c = np.asarray(speed_of_sound(temp[starts], rh[starts]), dtype=float)
-            return np.repeat(c, np.diff(np.append(starts, n)))
+    if n <= 8:
+        return np.array([_speed_memo(float(a), float(h)) for a, h in zip(temp, rh)])
+    new = np.empty(n, bool)
+    new[0] = True
+    np.not_equal(temp[1:], temp[:-1], out=new[1:])
+    new[1:] |= rh[1:] != rh[:-1]
+    starts = np.flatnonzero(new)
+    if starts.size <= n // 4:
+        c = np.asarray(speed_of_sound(temp[starts], rh[starts]), dtype=float)
+        return np.repeat(c, np.diff(np.append(starts, n)))
     return np.asarray(speed_of_sound(temp, rh), dtype=float).reshape(n)
+
+
+@functools.lru_cache(maxsize=256)
+def _speed_memo(temp_c, rh):
+    return float(np.asarray(speed_of_sound(np.array([temp_c]), np.array([rh])))[0])
 
 
 def _quantise(x, quantum):
