@@ -260,6 +260,8 @@ class Fuser:
         cut = t_s - _ENV_KEEP_S
         for t_name, v_name in (("_air_t", "_air_v"), ("_rh_t", "_rh_v")):
             t = getattr(self, t_name)
+            if t.shape[0] < 2 or not t[1] <= cut:
+                continue  # nothing to drop (the usual case: checked without a search)
             j = int(np.searchsorted(t, cut, side="right")) - 1
             if j > 0:
                 setattr(self, t_name, t[j:])
@@ -554,6 +556,8 @@ def _processing_order(sensor, t_meas, ping):
     """Time order; invalid times first (decided harmlessly). Ties go to the earlier ping
     (two echo readings at one instant: the unit that pinged first heard its own sound),
     then to the sensor index."""
+    if t_meas.shape[0] == 1:
+        return np.zeros(1, np.int64)  # one reading (a push)
     key = np.where(np.isfinite(t_meas), t_meas, -np.inf)
     # Each sensor's readings are nearly always in time order already, so merging those
     # runs (stably: on equal times the earlier run first) is cheap; only when two readings
