@@ -1078,8 +1078,10 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
                       label=sensors[si] if 0 <= si < len(sensors) else f"#{si}")
         from matplotlib.patches import Patch
         handles, labels = ax_i.get_legend_handles_labels()
-        handles.append(Patch(color="#777777", alpha=0.25, lw=0))
-        labels.append("±2√S (sensor colour)")
+        # one swatch per sensor, side by side: the bands are drawn in the sensors' colours
+        handles.append(tuple(Patch(color=_colour(si), alpha=0.3, lw=0)
+                             for si in sorted(S["innov"])) or Patch(color="#777777", alpha=0.3))
+        labels.append("±2√S (each sensor's band)")
         ax_i.set_ylabel(f"{d}: innovation (mm)")
         ax_i.set_xlabel("time (s)")
         left_out = [f"{S[k]:,} {what}" for k, what in (("gated", "gated"),
@@ -1097,8 +1099,10 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
                        np.percentile(b_all, 75) if b_all.size else 0.0, 1e-3])
             ax_i.set_ylim(-1.35 * top, 1.35 * top)
             # below the axes, clear of the data
+            from matplotlib.legend_handler import HandlerTuple
             ax_i.legend(handles, labels, fontsize=7.5, loc="upper center",
-                        bbox_to_anchor=(0.5, -0.2), ncols=3, markerscale=1.0, frameon=False)
+                        bbox_to_anchor=(0.5, -0.2), ncols=3, markerscale=1.0, frameon=False,
+                        handler_map={tuple: HandlerTuple(ndivide=None, pad=0.0)})
         # 2. NIS and its running mean
         tn, nis = S["nis"].result(2)
         ax_n.plot(tn, np.maximum(nis, 1e-6), ls="none", marker="o",
