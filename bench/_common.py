@@ -621,7 +621,6 @@ class FilterpyKalman:
         self.blank = fuser._blank
         self.p_blank_drop = fuser._p_blank_drop
         self.p_drop = fuser._p_drop
-        self.span = fuser._span
         par = fuser._par
         self.q = par[K.P_Q]
         self.gate = par[K.P_GATE]
@@ -650,7 +649,6 @@ class FilterpyKalman:
         self.last_raw = [math.nan] * ns
         self.last_new_t = [-math.inf] * ns
         self.last_t = [-math.inf] * ns
-        self.seen_t = [-math.inf] * ns
         self.ahead = [0] * ns
         self.leap = [0] * ns
         self.t_src = [-1] * nd
@@ -696,15 +694,11 @@ class FilterpyKalman:
             return out
         for anchor in range(2):
             a = buf[-1][1 + anchor]
-            if math.isnan(a) or buf[-1][3] < 0.0:
+            if math.isnan(a):
                 continue
             sa = math.sqrt(buf[-1][3 + anchor])
             story = []
-            witness = False
             for e in buf:
-                if e[3] < 0.0:  # an IR ranger's "nothing inside my span up to e[1]"
-                    witness |= a >= e[1]
-                    continue
                 z0, z1 = e[1], e[2]
                 best = 0
                 if math.isnan(z0) or (not math.isnan(z1) and abs(z1 - a) < abs(z0 - a)):
@@ -713,10 +707,11 @@ class FilterpyKalman:
                 reach = 3.0 * (math.sqrt(vi) + sa) + 0.01 + 0.5 * (t - e[0])
                 if abs(zi - a) <= reach:
                     story.append((e[0], zi, vi, e[5]))
-            several = any(x[3] != story[0][3] for x in story[1:])
-            if story and witness and not several:
-                several = any(e[3] < 0.0 and a >= e[1] and e[5] != story[0][3] for e in buf)
-            if len(story) < (nfew if several else self.reacq_n):
+            others = [x[3] for x in story[1:] if x[3] != story[0][3]] if story else []
+            kinds = any(self.kind[o] != self.kind[story[0][3]] for o in others)
+            several = bool(others)
+            need = nfew if kinds else (self.reacq_n // 2 + 1 if several else self.reacq_n)
+            if len(story) < need:
                 continue
             sw = st = sz = 0.0
             for tt, z, v, _s in story:
@@ -1037,17 +1032,6 @@ class FilterpyKalman:
                                     bestw = ch[j][0]
                                     innov = ch[j][3]
                                     nis = ch[j][2]
-            elif (code == K.OUT_OF_RANGE and flags & K.FLAG_NO_TARGET and comps
-                  and t - self.seen_t[s] <= self.reacq_w
-                  and all(self.span[s, 0] < c_[1].x[0, 0] - 3.0 * math.sqrt(c_[1].P[0, 0])
-                          and c_[1].x[0, 0] + 3.0 * math.sqrt(c_[1].P[0, 0]) < self.span[s, 1]
-                          for c_ in comps)):
-                # `_kernels._buffer_witness`: one per sensor, the newest
-                buf = [e for e in self.rb[d] if not (e[5] == s and e[3] < 0.0)]
-                if len(buf) == K.RB:
-                    buf.pop(0)
-                buf.append((t, self.span[s, 1], math.nan, -1.0, math.nan, s))
-                self.rb[d] = buf
             elif code == K.DROPOUT and self.kind[s] == K.KIND_ECHO and len(comps) > 1:
                 # "Nothing heard": likely when the target is inside the blanking zone.
                 ws = 0.0
@@ -1063,8 +1047,6 @@ class FilterpyKalman:
                 else:
                     for c_ in comps:
                         c_[0] = 1.0 / len(comps)
-            if code <= K.REACQUIRED and self.kind[s] == K.KIND_IR:
-                self.seen_t[s] = t
             o_code[i] = code
             o_branch[i] = branch
             o_bprob[i] = bprob

@@ -185,10 +185,6 @@ class Fuser:
         mix = [echo_mixture(s) if s.kind == "echo" else None for s in sens]
         self._p_blank_drop = np.array([m.p_blank_dropout if m else 0.0 for m in mix])
         self._p_drop = np.array([m.w_max if m else 0.0 for m in mix])
-        # where an IR ranger's "nothing seen" speaks against a track (a witness for
-        # re-acquisition beyond its span): between the near-side range of the voltage at
-        # the far end of the span and that far end
-        self._span = np.array([_ir_span(s) for s in sens])
         c_fast, c_slow = speed_of_sound(60.0), speed_of_sound(-40.0)
         self._tau_min = np.array([2 * getattr(s, "min_range_m", 0.0) / c_fast for s in sens])
         self._tau_max = np.array([2 * getattr(s, "max_range_m", 0.0) / c_slow for s in sens])
@@ -440,10 +436,10 @@ class Fuser:
         st = self.state
         K.kalman_run(order, t, direction, sensor, z, sg, code, flags, rawv,
                      self._kind, self._hold, self._blank, self._p_blank_drop, self._p_drop,
-                     self._span, self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
+                     self._par, st["W"], st["X"], st["P"], st["NH"], st["T"], st["RBT"],
                      st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"], st["LAST_NEW_T"],
                      st["T_SRC"], st["LAST_T"], st["AHEAD"], st["LEAP"],
-                     st["CLOCK_ODD"], st["SEEN_T"],
+                     st["CLOCK_ODD"],
                      out["code"], out["flags"], out["innov"], out["nis"], out["branch"],
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
@@ -538,18 +534,6 @@ class Fuser:
         K._moments(st["W"][d], st["X"][d], st["P"][d], nh, mom)
         return Estimate(float(st["T"][d]), direction, float(mom[0]), float(math.sqrt(mom[2])),
                         float(mom[1]), float(math.sqrt(mom[4])), float(st["W"][d, :nh].max()), nh)
-
-
-def _ir_span(s):
-    """``(lo, hi)`` from the direction's reference point where an IR triangulation
-    ranger's target gives more than the voltage at the far end of its span; ``(inf,
-    -inf)`` for other sensors."""
-    if s.kind != "triangulation":
-        return (math.inf, -math.inf)
-    c = s.curve
-    near, _ = c.ranges(float(c.volts(c.max_range_m)))
-    lo = float(near) if np.isfinite(near) else -math.inf
-    return (lo + s.offset_m, c.max_range_m + s.offset_m)
 
 
 def _processing_order(sensor, t_meas, ping):

@@ -149,7 +149,8 @@ class EstimatorConfig:
         was an outlier" hypothesis alive.
     reacquire_count : int
         Mutually consistent rejected readings of one sensor that restart a track (two
-        suffice when they come from two sensors).
+        suffice from an IR and an echo ranger, ``reacquire_count // 2 + 1`` from two
+        sensors of one kind).
     reacquire_window_s : float
         ...that many inside this time window.
     max_rate_mps : float
@@ -196,9 +197,9 @@ class EstimatorConfig:
             return "max_hypotheses", "max_hypotheses must be 1..8"
         if not 0 < self.near_prior < 1:
             return "near_prior", "near_prior must be strictly between 0 and 1"
-        if not 2 <= self.reacquire_count <= 15:
-            # the re-acquisition buffer holds 16 entries, one of them kept for a witness
-            return "reacquire_count", "reacquire_count must be 2..15"
+        if not 2 <= self.reacquire_count <= 16:
+            # the re-acquisition buffer holds 16 entries: a longer story could never form
+            return "reacquire_count", "reacquire_count must be 2..16"
         if self.particles < 10:
             return "particles", "particles must be >= 10"
         for k in ("accel_psd", "init_rate_sigma_mps", "reacquire_window_s", "max_lag_s",

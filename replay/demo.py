@@ -23,9 +23,9 @@ DEMO_NOTES = {
     "shelf-pass": (
         "Reading this run: a person (24 s) and a trolley (70 s) step into the front beam "
         "and leave it; the track re-acquires 30-50 ms after each steps in (when the IR "
-        "ranger first shows it) and 80-225 ms after each leaves (two echo readings, the IR "
-        "ranger now seeing nothing where the track was), which is where the 2.5 m worst "
-        "errors and the large NEES come from. From 62 s to 66 s a dark carton weakens the "
+        "ranger first shows it) and 0.4-0.7 s after each leaves (five echo readings: the "
+        "IR ranger sees nothing there, which a dark target would also give), which is "
+        "where the 2.5 m worst errors and the large NEES come from. From 62 s to 66 s a dark carton weakens the "
         "left IR ranger's return; the rig gives that unit no gain error (gain_sigma 0), so "
         "the left track sits some 8 mm off for those seconds, several sigma: a rig that "
         "does not describe its unit. From 100 s to 108 s a shelf upright at the edge of "

@@ -414,28 +414,6 @@ def test_late_reading_and_reacquisition():
     assert dec.reason == "late"
 
 
-def test_an_ir_ranger_that_sees_nothing_where_the_track_is_is_a_witness_here_too():
-    # The Kalman path's rule (tests/test_fuser.py): an IR ranger that saw the target and
-    # now sees nothing inside its span joins the echo ranger's story beyond the span as
-    # a second witness, so the track follows a target that leaves at the echo ranger's
-    # second reading of the wall behind it, in both estimators (common practice, no
-    # source).
-    ir = _ir(volts_sigma=0.01)
-    echo = EchoRanger(name="echo", direction="front")
-    rig = _rig([ir, echo], particles=500, seed=4, reacquire_count=5, reacquire_window_s=0.5)
-    rng = np.random.default_rng(23)
-    t_ir, t_echo = np.arange(100) * 0.02, np.arange(40) * 0.05 + 0.003
-    v = np.where(t_ir < 1.0, CURVE.volts(0.5), 0.1) + rng.normal(0.0, 0.01, t_ir.size)
-    r = np.where(t_echo < 1.0, 0.5, 3.0) + rng.normal(0.0, 0.003, t_echo.size)
-    readings = {"ir": (t_ir, v), "echo": (t_echo, _echo_raw(r))}
-    pf = ParticleFuser(rig).process(readings).in_time_order()
-    kf = _kalman(rig).process(readings).in_time_order()
-    for b in (pf, kf):
-        echo_after = b.code[(b.sensor == 1) & (b.t_s >= 1.0)]
-        assert list(echo_after[:2]) == [D.GATED, D.REACQUIRED]
-        assert b.state[-1, 0] == pytest.approx(3.0, abs=0.02)
-
-
 def test_push_equals_process_and_seed_determinism():
     # The robot (push) and the replay (process, in any chunking) run the same numbers;
     # a run is reproducible from its seed and changes with it.

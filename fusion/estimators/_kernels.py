@@ -28,7 +28,6 @@ FIRST_REJECT, HELD, DROPOUT, OUT_OF_RANGE, CROSSTALK, GATED, INVALID, LATE = 3, 
 CLOCK_AHEAD = 12
 FLAG_CROSSTALK_SUSPECT = 2
 FLAG_R_INFLATED = 4
-FLAG_NO_TARGET = 8
 KIND_IR, KIND_ECHO = 0, 1
 
 # Indices into the parameter vector (see fusion.fuser._params).
@@ -66,7 +65,6 @@ def new_state(n_dir: int, n_sensor: int, k: int) -> dict:
         "LAST_T": np.full(n_sensor, -np.inf),
         "AHEAD": np.zeros(n_sensor, np.int64), "LEAP": np.zeros(n_sensor, np.int64),
         "CLOCK_ODD": np.zeros(1, np.int64),      # sensors marked leapt or ahead
-        "SEEN_T": np.full(n_sensor, -np.inf),    # an IR ranger's last fused reading
         "T_SRC": np.full(n_dir, -1, np.int64),   # the sensor whose reading set T
     }
 
@@ -162,24 +160,16 @@ def _move(d, i, j, RBT, RBZ, RBV, RBS):
         RBV[d, j, c] = RBV[d, i, c]
 
 
-@njit(cache=True, inline="always")
-def _new_slot(d, RBT, RBZ, RBV, RBS, RBN):
-    """Index of a new last entry of direction ``d``'s re-acquisition buffer (the oldest
-    dropped when it is full); the entry counts from now on."""
+@njit(cache=True)
+def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
+    """Append a rejected reading (both candidates, and its sensor) to the direction's
+    re-acquisition buffer, dropping the oldest when it is full."""
     m = RBN[d]
     if m == RB:
         for j in range(RB - 1):
             _move(d, j + 1, j, RBT, RBZ, RBV, RBS)
         m = RB - 1
     RBN[d] = m + 1
-    return m
-
-
-@njit(cache=True)
-def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
-    """Append a rejected reading (both candidates, and its sensor) to the direction's
-    re-acquisition buffer, dropping the oldest when it is full."""
-    m = _new_slot(d, RBT, RBZ, RBV, RBS, RBN)
     RBT[d, m] = t
     RBS[d, m] = s
     for c in range(2):
@@ -188,41 +178,20 @@ def _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN):
 
 
 @njit(cache=True)
-def _buffer_witness(d, t, s, far, RBT, RBZ, RBV, RBS, RBN):
-    """Note that sensor `s` saw nothing inside its span (up to `far`) at `t`: a witness
-    for any story beyond `far`. One per sensor is kept, the newest (an IR ranger holds
-    and repeats its "nothing"; many would crowd the readings out of the buffer)."""
-    j = 0
-    for i in range(RBN[d]):
-        if not (RBS[d, i] == s and RBV[d, i, 0] < 0.0):
-            if j != i:
-                _move(d, i, j, RBT, RBZ, RBV, RBS)
-            j += 1
-    RBN[d] = j
-    m = _new_slot(d, RBT, RBZ, RBV, RBS, RBN)
-    RBT[d, m] = t
-    RBS[d, m] = s
-    RBZ[d, m, 0] = far
-    RBZ[d, m, 1] = math.nan
-    RBV[d, m, 0] = -1.0  # marks a witness
-    RBV[d, m, 1] = math.nan
-
-
-@njit(cache=True)
-def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, rate_sigma, out):
+def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, rate_sigma, sens_kind,
+                 out):
     """Do the rejected readings of the last `window` seconds tell one consistent story?
 
     Each buffered reading has one or two candidates. For each candidate of the newest
     reading (an anchor), every reading offers its candidate nearest the anchor; those
     within reach of the anchor (three sigma each, a centimetre, and 0.5 m/s of motion)
-    form the story, which needs at least `nmin` readings from one sensor, or two from
-    two sensors (independent witnesses: a new target seen by the IR ranger and the echo
-    ranger alike is there, while clutter, ghosts and crosstalk are one unit's story) —
-    a weighted straight line that fits each within three sigma plus a centimetre, and a
-    rate no faster than `vmax`.
-    Readings outside the story (crosstalk, clutter) do not spoil it. A witness (an IR
-    ranger that saw nothing inside its span, see `_buffer_witness`) joins every story
-    beyond its span as a second sensor, without a range to fit.
+    form the story, which needs at least `nmin` readings from one sensor, two when
+    sensors of both kinds tell it (independent witnesses: a new target seen by the IR
+    ranger and the echo ranger alike is there, while clutter, ghosts and crosstalk are
+    one kind's story), or ``nmin // 2 + 1`` when two units of one kind tell it (they can
+    share a ghost or a post in both cones) — a weighted straight line that fits each
+    within three sigma plus a centimetre, and a rate no faster than `vmax`.
+    Readings outside the story (crosstalk, clutter) do not spoil it.
 
     The new track's rate is the line's slope weighed against the prior rate of a new
     track (0 with sigma `rate_sigma`): two readings a few milliseconds apart give a
@@ -238,8 +207,7 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, rate_sigma, 
             j += 1
     RBN[d] = j
     n = j
-    nfew = min(nmin, 2)
-    if n < nfew:
+    if n < min(nmin, 2):
         return 0
     npass = 0
     zc = np.empty(RB)
@@ -248,15 +216,11 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, rate_sigma, 
     tc = np.empty(RB)
     for anchor in range(2):
         a = RBZ[d, n - 1, anchor]
-        if math.isnan(a) or RBV[d, n - 1, 0] < 0.0:
+        if math.isnan(a):
             continue
         sa = math.sqrt(RBV[d, n - 1, anchor])
         m = 0
-        witness = False  # a sensor saw nothing where the track is, and `a` lies beyond
         for i in range(n):
-            if RBV[d, i, 0] < 0.0:
-                witness |= a >= RBZ[d, i, 0]
-                continue
             best = 0
             if math.isnan(RBZ[d, i, 0]) or (not math.isnan(RBZ[d, i, 1]) and
                                              abs(RBZ[d, i, 1] - a) < abs(RBZ[d, i, 0] - a)):
@@ -270,16 +234,18 @@ def _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, nmin, window, vmax, rate_sigma, 
                 tc[m] = RBT[d, i]
                 sc[m] = RBS[d, i]
                 m += 1
+        # witnesses of another kind (an IR and an echo ranger: other physics, other
+        # failures) confirm at once; two units of one kind can share a ghost or a post in
+        # both cones: they shorten the story less
+        kinds = False
         several = False
         for i in range(1, m):
             if sc[i] != sc[0]:
                 several = True
-                break
-        if m > 0 and witness and not several:
-            for i in range(n):
-                if RBV[d, i, 0] < 0.0 and a >= RBZ[d, i, 0] and RBS[d, i] != sc[0]:
-                    several = True
-        if m < (nfew if several else nmin):
+                if sens_kind[sc[i]] != sens_kind[sc[0]]:
+                    kinds = True
+        need = min(nmin, 2) if kinds else (nmin // 2 + 1 if several else nmin)
+        if m < need:
             continue
         sw = 0.0
         st = 0.0
@@ -433,9 +399,9 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
 
 @njit(cache=True)
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
-               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, sens_span,
-               par, W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
-               T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD, SEEN_T,
+               sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
+               W, X, P, NH, T, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
+               T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
                o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                o_nh, o_tt):
     """Run the Gaussian-sum Kalman estimator over events in the order `order`, in place.
@@ -583,7 +549,7 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     code = CROSSTALK if suspect else GATED
                     _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
                     npass = _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n, reacq_w, vmax,
-                                         init_rate, ra)
+                                         init_rate, sens_kind, ra)
                     if npass > 0:
                         NH[d] = npass
                         for k in range(npass):
@@ -700,19 +666,6 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                                 bestw = CW[j]
                                 innov = CY[j]
                                 nis = CNIS[j]
-        elif code == OUT_OF_RANGE and (flags & FLAG_NO_TARGET) != 0 and NH[d] > 0 \
-                and t - SEEN_T[s] <= reacq_w:
-            # An IR ranger that saw the target a moment ago and now sees nothing where
-            # the whole track lies (well inside the span where a target shows) contradicts
-            # the track: a witness for re-acquisition beyond the span. One that never saw
-            # it (a dark or clear target) is no witness.
-            inside = True
-            for k in range(NH[d]):
-                sd3 = 3.0 * math.sqrt(P[d, k, 0, 0])
-                if not (X[d, k, 0] - sd3 > sens_span[s, 0] and X[d, k, 0] + sd3 < sens_span[s, 1]):
-                    inside = False
-            if inside:
-                _buffer_witness(d, t, s, sens_span[s, 1], RBT, RBZ, RBV, RBS, RBN)
         elif code == DROPOUT and sens_kind[s] == KIND_ECHO and NH[d] > 1:
             # "Nothing heard": likely when the target is inside the blanking zone.
             nh = NH[d]
@@ -728,8 +681,6 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
             else:
                 for k in range(nh):
                     W[d, k] = 1.0 / nh
-        if code <= REACQUIRED and sens_kind[s] == KIND_IR:
-            SEEN_T[s] = t
         o_code[i] = code
         o_flags[i] = flags
         o_innov[i] = innov

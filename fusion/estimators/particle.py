@@ -69,12 +69,12 @@ Decisions
     under its model: per metre for echo readings, per volt for IR readings.
 Re-acquisition
     Gated readings go to the re-acquisition buffer of the Kalman path (both IR
-    candidates; an accepted reading empties it; an IR ranger's "nothing inside my span"
-    where the whole posterior lies is kept as a witness, as there): when
-    ``reacquire_count`` mutually consistent ones of one sensor, or two of two sensors,
-    fall inside ``reacquire_window_s``, the particles are drawn afresh around the line
-    through them, in equal groups when two stories fit (decision *reacquired*, branch
-    probability 1 / number of stories, as in the Kalman path).
+    candidates; an accepted reading empties it): when ``reacquire_count`` mutually
+    consistent ones of one sensor (two of an IR and an echo ranger, ``reacquire_count //
+    2 + 1`` of two units of one kind) fall inside ``reacquire_window_s``, the particles
+    are drawn afresh around the line through them, in equal groups when two stories fit
+    (decision *reacquired*, branch probability 1 / number of stories, as in the Kalman
+    path).
 Determinism
     Each direction has its own random stream (xoshiro256++, Blackman & Vigna 2021; normals
     by the ziggurat of Marsaglia & Tsang 2000) whose state lives in the estimator state,
@@ -127,9 +127,7 @@ GRID_POINTS = 4096
 # Decision codes and flags: the Kalman kernel's copies of fusion.decisions.
 ACCEPTED, AMBIGUOUS, REACQUIRED = K.ACCEPTED, K.AMBIGUOUS, K.REACQUIRED
 HELD, DROPOUT, CROSSTALK, GATED, LATE = K.HELD, K.DROPOUT, K.CROSSTALK, K.GATED, K.LATE
-OUT_OF_RANGE = K.OUT_OF_RANGE
 FLAG_CROSSTALK_SUSPECT, FLAG_R_INFLATED = K.FLAG_CROSSTALK_SUSPECT, K.FLAG_R_INFLATED
-FLAG_NO_TARGET = K.FLAG_NO_TARGET
 KIND_IR, KIND_ECHO = K.KIND_IR, K.KIND_ECHO
 RB = K.RB
 
@@ -140,9 +138,8 @@ N_PARAMS = 12
 
 # Columns of the per-sensor model table (see `ParticleFuser._sensor_table`).
 S_HOLD, S_OFFSET, S_SPLIT, S_VSIG, S_IR_OUT, S_VSPAN, S_DR, S_W_HIT, S_W_SHORT, S_W_MAX, \
-    S_W_RAND, S_LAMBDA, S_ZMAX, S_WIDTH, S_BLANK, S_P_BLANK, S_DROP_SIGMA, S_GAIN, \
-    S_SPAN_LO, S_SPAN_HI = range(20)
-N_SENS_COLS = 20
+    S_W_RAND, S_LAMBDA, S_ZMAX, S_WIDTH, S_BLANK, S_P_BLANK, S_DROP_SIGMA, S_GAIN = range(18)
+N_SENS_COLS = 18
 
 _U53 = 1.0 / 9007199254740992.0  # 2**-53: 53 random bits to a double in [0, 1)
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
@@ -715,7 +712,7 @@ def _group(npart, npass):
 def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                  ev_volts, sens_kind, sens, grids, dir_split, par,
                  R, V, W, NH, T, MOM, PMAJ, RNG, RBT, RBZ, RBV, RBS, RBN, LAST_RAW, LAST_NEW_T,
-                 T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD, SEEN_T,
+                 T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD,
                  o_code, o_flags, o_innov, o_nis, o_branch, o_bprob, o_loglik, o_track, o_pmaj,
                  o_nh, o_tt):
     """Run the particle estimator over events in the order `order`, in place.
@@ -821,7 +818,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                     nis = best_nis
                     K._buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
                     npass = K._reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n,
-                                           reacq_w, vmax, init_rate, ra)
+                                           reacq_w, vmax, init_rate, sens_kind, ra)
                     if npass > 0:
                         # one equal group of particles per consistent story, with the
                         # Kalman path's spread (line-fit variance times the count)
@@ -882,15 +879,6 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                 _modes(d, mass[1], has_split, amb, NH, PMAJ)
                 if ess < ess_min:
                     _resample(d, split_d, R, V, W, RNG, CR, CV, IDX, rough)
-        elif code == OUT_OF_RANGE and (flags & FLAG_NO_TARGET) != 0 and NH[d] > 0 \
-                and t - SEEN_T[s] <= reacq_w:
-            # as the Kalman path: an IR ranger that saw the target a moment ago and now
-            # sees nothing where the whole posterior lies is a re-acquisition witness
-            sd3 = 3.0 * math.sqrt(MOM[d, 2])
-            if MOM[d, 0] - sd3 > row[S_SPAN_LO] and MOM[d, 0] + sd3 < row[S_SPAN_HI]:
-                K._buffer_witness(d, t, s, row[S_SPAN_HI], RBT, RBZ, RBV, RBS, RBN)
-        if code <= REACQUIRED and is_ir:
-            SEEN_T[s] = t
         o_code[i] = code
         o_flags[i] = flags
         o_innov[i] = innov
@@ -928,7 +916,7 @@ def new_state(n_dir: int, n_sensor: int, n_particles: int, seed: int = 0) -> dic
     # The screening and re-acquisition buffers are the Kalman kernel's, shapes and all.
     kal = K.new_state(n_dir, n_sensor, 1)
     for key in ("RBT", "RBZ", "RBV", "RBS", "RBN", "LAST_RAW", "LAST_NEW_T", "T_SRC", "LAST_T",
-                "AHEAD", "LEAP", "CLOCK_ODD", "SEEN_T"):
+                "AHEAD", "LEAP", "CLOCK_ODD"):
         st[key] = kal[key]
     return st
 
@@ -1026,7 +1014,6 @@ class ParticleFuser(Fuser):
         grids = np.zeros((len(sens), grid_points))
         for j, s in enumerate(sens):
             tab[j, S_OFFSET] = s.offset_m
-            tab[j, [S_SPAN_LO, S_SPAN_HI]] = self._span[j]
             if s.kind == "echo":
                 m = self.mixtures[s.name]
                 tab[j, S_SPLIT] = -np.inf
@@ -1064,7 +1051,7 @@ class ParticleFuser(Fuser):
                      st["R"], st["V"], st["W"], st["NH"], st["T"], st["MOM"], st["PMAJ"],
                      st["RNG"], st["RBT"], st["RBZ"], st["RBV"], st["RBS"], st["RBN"], st["LAST_RAW"],
                      st["LAST_NEW_T"], st["T_SRC"], st["LAST_T"], st["AHEAD"],
-                     st["LEAP"], st["CLOCK_ODD"], st["SEEN_T"], out["code"],
+                     st["LEAP"], st["CLOCK_ODD"], out["code"],
                      out["flags"], out["innov"], out["nis"],
                      out["branch"], out["bprob"], out["ll"], track, out["pmaj"], out["nh"],
                      out["tt"])
