@@ -419,7 +419,6 @@ class Fuser:
                                                  ("ll", float), ("pmaj", float),
                                                  ("nh", np.int8), ("tt", float))}
         track = np.empty((n, 5))
-        st = self.state
         direction = np.take(self._dir_of, sensor)
         self._kernel(order, np.where(bad_t, 0.0, t_meas), direction, sensor, prep["z"],
                      prep["sg"], prep["code"], prep["flags"], prep["rawv"], out, track)

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fusion.errors import ConfigError, InputError
+from fusion.errors import InputError
 
 from ._io import refuse_overwrite
 from .logfile import SensorStream, write_log

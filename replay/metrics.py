@@ -14,9 +14,8 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from fusion._chi2 import chi2_ppf, chi2_sf
 
-from fusion import decisions as D
+from fusion._chi2 import chi2_ppf, chi2_sf
 
 __all__ = ["ZONES", "zone_edges", "zone_of", "predict_range", "ErrorStats", "Whiteness", "nis_bounds",
            "consistency_verdict"]

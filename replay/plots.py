@@ -1200,7 +1200,6 @@ def _fused_sel(tf, dec, a, b, lo_t, hi_t, gated_code=None):
     if code.size and (code.min() < 0 or code.max() >= ncodes):
         raise tf.error(f"decision code outside 0..{ncodes - 1}", field=dec["decision"].name)
     nis = tf.read(dec["nis"], a, b)
-    nu = tf.read(dec["innovation_m"], a, b)
     # as the replay summary (replay.run `_accumulate`): fused readings with a finite NIS,
     # except re-acquiring ones, whose NIS is against the track they overturned
     reacq = tf.decision_names.index("reacquired") if "reacquired" in tf.decision_names else -1

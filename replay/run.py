@@ -22,7 +22,7 @@ import numpy as np
 
 from fusion import decisions as D
 from fusion.errors import InputError, LogFormatError, RangefuseError
-from fusion.fuser import Fuser, make_fuser  # noqa: F401 (make_fuser: replay's public name too)
+from fusion.fuser import make_fuser  # noqa: F401 (make_fuser: replay's public name too)
 from fusion.rig import Rig
 from fusion.estimators.smoother import rts_smooth
 

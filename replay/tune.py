@@ -35,7 +35,7 @@ from scipy import optimize
 from fusion import decisions as D
 from fusion._toml import dumps
 from fusion.errors import InputError
-from fusion.fuser import Fuser, _params
+from fusion.fuser import Fuser
 from fusion.rig import Rig
 
 from . import metrics as M

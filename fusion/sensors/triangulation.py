@@ -1267,7 +1267,6 @@ def fit_report(range_m, volts, model="auto", *, min_range_m=None, max_range_m=No
     r, v, rows_a, label = _check_pairs(range_m, volts, where, rows)
     order = np.argsort(r, kind="stable")
     r, v, rows_a = r[order], v[order], rows_a[order]
-    n = len(r)
     scale = float(np.max(np.abs(v)))
 
     u, inv, counts = np.unique(r, return_inverse=True, return_counts=True)
