@@ -203,6 +203,7 @@ class Fuser:
         self._last_batch_t = math.inf  # first reading time of the last batch decoded
         self._pings = [(np.zeros(0), np.zeros(0), np.zeros(0, np.int64)) if k == K.KIND_ECHO
                        else (None, None, None) for k in self._kind]
+        self._crosstalk_possible = int(np.count_nonzero(self._kind == K.KIND_ECHO)) >= 2
 
     # --- environment -------------------------------------------------------------
     # Only usable samples are kept (a failed one carries no value; the staleness of the
@@ -443,7 +444,7 @@ class Fuser:
                      out["bprob"], out["ll"], track, out["pmaj"], out["nh"], out["tt"])
 
     def _screen_crosstalk(self, sensor, ping, tof, code, flags, order):
-        if np.count_nonzero(self._kind == K.KIND_ECHO) < 2:
+        if not self._crosstalk_possible:
             return  # a lone echo ranger hears no other unit's ping
         is_echo = self._kind[sensor] == K.KIND_ECHO
         has_ping = is_echo & np.isfinite(ping)
