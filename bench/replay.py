@@ -66,7 +66,7 @@ def main(argv=None):
     # untimed run loads or compiles them, so a new machine's first figure is not compile
     # time; then the best of two runs.
     replay_once()
-    t_run, res = C.timed(replay_once, 2)
+    t_run, _ = C.timed(replay_once, 2)
     t_run_s = t_run.best
 
     # The core alone, every reading in one call.
