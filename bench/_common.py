@@ -597,6 +597,15 @@ def read_all(path: str):
 # --------------------------------------------------------------------------------------
 # The baseline: the same recursion in Python on filterpy
 # --------------------------------------------------------------------------------------
+def _outlier_density(outl, suspect, z, sg, infl, kf):
+    """The kernel's `_outlier_density` on one filterpy component."""
+    if not suspect:
+        return outl
+    c = 0 if not math.isnan(z[0]) else 1
+    S = kf.P[0, 0] + sg[c] * sg[c] * infl
+    return outl + K.XT_DENS * 0.5 * math.erfc((z[c] - kf.x[0, 0]) / math.sqrt(2.0 * S))
+
+
 class FilterpyKalman:
     """`fusion.estimators._kernels.kalman_run`, ported line by line to filterpy.
 
@@ -838,8 +847,6 @@ class FilterpyKalman:
         F = np.eye(2)
         Q = np.zeros((2, 2))
         LOG_2PI = K.LOG_2PI
-        # crosstalk suspects meet a denser outlier term
-        suspect_factor = K.SUSPECT_OUTLIER_FACTOR
         scratch = self._scratch
         for i in order.tolist():
             d = ev_dir[i]
@@ -867,7 +874,6 @@ class FilterpyKalman:
                         self.last_raw[s] = raw
                         self.last_new_t[s] = t
             suspect = (flags & K.FLAG_CROSSTALK_SUSPECT) != 0
-            o_dens = outl * suspect_factor if suspect else outl
             # a track whose predicted sigma would pass LOST_SIGMA_M restarts
             if code == K.ACCEPTED and comps and q * (t - self.T[d]) ** 3 / 3.0 > self.lost_var:
                 self.comps[d] = comps = []
@@ -930,7 +936,8 @@ class FilterpyKalman:
                     if not ch:
                         innov = best_y
                         nis = best_nis
-                        ll = math.log(o_dens)
+                        ll = math.log(sum(w * _outlier_density(outl, suspect, z, sg, infl, kf)
+                                            for w, kf in comps))
                         code = K.CROSSTALK if suspect else K.GATED
                         buf = self.rb[d]
                         if len(buf) == K.RB:
@@ -954,8 +961,8 @@ class FilterpyKalman:
                             tot += c_[0]
                         # "this reading is an outlier": each prior component stays alive
                         for w, kf in comps:
-                            ch.append([w * o_dens, -1, math.nan, math.nan, kf.x[0, 0], kf.x[1, 0],
-                                       kf.P])
+                            ch.append([w * _outlier_density(outl, suspect, z, sg, infl, kf), -1,
+                                       math.nan, math.nan, kf.x[0, 0], kf.x[1, 0], kf.P])
                             tot += ch[-1][0]
                         ll = math.log(tot) if tot > 0 else -745.0
                         pb0 = pb1 = pmiss = 0.0

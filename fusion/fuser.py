@@ -38,7 +38,6 @@ def make_fuser(rig: Rig):
     return Fuser(rig)
 
 _PING_MEMORY_S = 1.0
-_CROSSTALK_TOL_S = 2.5e-4  # about 4 cm of two-way path
 
 
 @dataclass(frozen=True)
@@ -467,11 +466,12 @@ class Fuser:
             new.append((pj[o], tj[o], rj[o]))
         rx = np.where(has_ping, ping + tof, np.nan)
         suspect, definite = classify_crosstalk(rx, sensor, new, self._tau_min, self._tau_max,
-                                               _CROSSTALK_TOL_S, rank=rank)
+                                               K.XT_TOL_S, rank=rank)
         # Only a timing match is evidence (a ping merely inside the listening window is
         # not). A match is symmetric — when unit a hears b's echo, b's own reading matches
-        # a's ping just as well — so it marks both suspect and the track decides: a
-        # suspect meets a higher outlier density in the estimator.
+        # a's ping just as well — so it marks both suspect and the track decides, by the
+        # first-arrival rule (`_kernels.XT_DENS`): the one that reads short of its track
+        # is the likelier crosstalk.
         flags[definite & (code == D.ACCEPTED)] |= D.FLAG_CROSSTALK_SUSPECT
         horizon = np.nanmax(ping[has_ping]) - _PING_MEMORY_S
         self._pings = [(None, None, None) if p is None else

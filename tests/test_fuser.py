@@ -277,6 +277,71 @@ def test_crosstalk_push_in_process_order_equals_process():
     assert [decided[(n, i)] for _, n, i in events] == b.code[b.order].tolist()
 
 
+def _coincident_pair(offset_m, with_pings=True, n=40, k=20):
+    """A and B face targets at 0.6 m on two directions and ping every 50 ms, B 25 ms
+    after A. At cycle `k` the two pings come together: A hears B's echo at B's echo
+    instant, which A reports `offset_m` off its own range (A pinged 2 offset / c after B
+    for a negative offset; before B, its own echo lost, for a positive one)."""
+    p_a = np.arange(n) * 0.05
+    p_b = p_a + 0.025
+    tof_a, tof_b = np.full(n, _tof(0.6)), np.full(n, _tof(0.6))
+    dp = -2.0 * offset_m / C20
+    p_a[k] = p_b[k] + dp
+    tof_a[k] = tof_b[k] - dp
+    out = {}
+    for name, p, tof in (("a", p_a, tof_a), ("b", p_b, tof_b)):
+        out[name] = (p + tof, tof, p) if with_pings else (p + tof, tof)
+    return out, k
+
+
+@pytest.mark.parametrize("units", [-3.0, -2.0, -1.0, 1.0, 2.0, 3.0])
+def test_timing_matched_reading_inside_the_gate_follows_the_first_arrival_rule(units):
+    # A threshold echo detector reports the first sound after its ring-down (common
+    # practice, no source). A reading at the instant another unit's echo arrives is that
+    # unit's sound if this unit heard it (even odds, `XT_HEAR_P`) and its own echo would
+    # have come later, P(own range > z) = Phi(-y / sqrt(S)); or its own echo, if that came
+    # back inside the match tolerance, N(y; 0, S) * 2 * XT_HALF_M. The kernel's
+    # predictive density and decision are checked against that mixture with scipy's
+    # normal distribution.
+    from scipy.stats import norm
+    from fusion.estimators import _kernels as K
+    rig = _rig([_echo("a", "front", ping_logged=True), _echo("b", "left", ping_logged=True)],
+               **SLOW)
+    sigma = 0.003  # about A's predicted sigma: the sensor's, and a little for the track
+    fuser = Fuser(rig)
+    b = fuser.process(_coincident_pair(units * sigma)[0])
+    a_rows = np.flatnonzero(b.sensor == fuser.sensor_names.index("a"))
+    i = a_rows[20]
+    assert b.flags[i] & D.FLAG_CROSSTALK_SUSPECT
+    y, nis = float(b.innovation_m[i]), float(b.nis[i])
+    sd = abs(y) / math.sqrt(nis)
+    assert sd == pytest.approx(sigma, rel=0.2)
+    own = norm.pdf(y, scale=sd)
+    other = (rig.estimator.outlier_density
+             + K.XT_HEAR_P * norm.cdf(-y / sd) / (2.0 * K.XT_HALF_M))
+    assert b.loglik[i] == pytest.approx(math.log(own + other), rel=1e-9)
+    assert b.code[i] == (D.CROSSTALK if other > own else D.ACCEPTED)
+    # the genuine partner, B's reading of the same instant, is matched too and kept
+    b_rows = np.flatnonzero(b.sensor == fuser.sensor_names.index("b"))
+    assert b.code[b_rows[20]] == D.ACCEPTED
+    # Without the match the same reading meets only the ordinary outlier density.
+    plain = Fuser(rig).process(_coincident_pair(units * sigma, with_pings=False)[0])
+    assert plain.code[np.flatnonzero(plain.sensor == 0)[20]] == D.ACCEPTED
+
+
+def test_first_arrival_rule_rejects_short_and_keeps_long_matched_readings():
+    # The asymmetry itself: three sigma short of the track a matched reading is decided
+    # crosstalk; three sigma beyond it, it is the unit's own echo.
+    rig = _rig([_echo("a", "front", ping_logged=True), _echo("b", "left", ping_logged=True)],
+               **SLOW)
+    codes = {}
+    for sign in (-1, 1):
+        fuser = Fuser(rig)
+        b = fuser.process(_coincident_pair(sign * 3 * 0.003)[0])
+        codes[sign] = int(b.code[np.flatnonzero(b.sensor == 0)[20]])
+    assert codes == {-1: D.CROSSTALK, 1: D.ACCEPTED}
+
+
 def test_overlapping_listening_windows_without_a_timing_match_start_tracks():
     # B (target 2.0 m) pings, A (target 1.0 m) pings 2 ms later, every 50 ms. A hears its
     # own echo 7.8 ms after B's ping, while B's sound needs 11.7 ms: the timing does not

@@ -148,7 +148,7 @@ def test_ir_likelihood_is_the_voltage_gaussian_plus_outliers():
     vg = VoltageGaussian(ir.total_volts_sigma, CURVE)
     eps, span = row[P.S_IR_OUT], row[P.S_VSPAN]
     for v in (0.4, 1.5, 2.6):
-        P._lik_ir(0, v, 1.0, row, grid, 1.0, st["R"], st["W"], wn)
+        P._lik_ir(0, v, 1.0, row, grid, st["R"], st["W"], wn)
         ref = (1 - eps) * np.exp(vg.loglik(v, r)) + eps / span
         np.testing.assert_allclose(wn, ref, rtol=1e-2)
         far = r > CURVE.peak_range_m

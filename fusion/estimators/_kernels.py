@@ -35,7 +35,21 @@ P_Q, P_GATE, P_K, P_PRUNE, P_NEAR_PRIOR, P_AMB, P_OUTLIER, P_REACQ_N, P_REACQ_W,
     P_MAX_LAG, P_INIT_RATE, P_MERGE, P_VMAX, P_MAX_LEAD = range(14)
 N_PARAMS = 14
 RB = 16  # re-acquisition buffer length per direction
-SUSPECT_OUTLIER_FACTOR = 100.0
+# Crosstalk between echo rangers, as a first-arrival detector sees it. A unit reports the
+# first sound above threshold after its ring-down. When screening has matched a reading's
+# arrival time x to another unit's echo (within XT_TOL_S), two stories explain it:
+#   crosstalk - the unit heard the other's sound (probability XT_HEAR_P) and its own echo
+#               would have come later, P(own range > z) = Phi(-y / sqrt(S));
+#   own echo  - its own echo came back within the match tolerance of x, probability
+#               N(y; 0, S) * 2 * XT_HALF_M (the tolerance in range).
+# So a matched reading meets the outlier density XT_HEAR_P * Phi(-y/sqrt(S)) / (2 XT_HALF_M)
+# on top of the ordinary one: a matched reading short of the track is likely crosstalk,
+# one at or beyond it is likely the unit's own echo (common practice, no source: the
+# first-arrival rule of threshold echo detectors).
+XT_TOL_S = 2.5e-4  # timing-match tolerance: about 4 cm of two-way path
+XT_HALF_M = 0.5 * 343.0 * XT_TOL_S
+XT_HEAR_P = 0.5  # no knowledge of how often one unit hears another: even odds
+XT_DENS = XT_HEAR_P / (2.0 * XT_HALF_M)
 # A sensor stamped ahead stays `clock_ahead` while other sensors keep reporting; after this
 # many of its readings with no other sensor heard from, its clock is the only one left.
 AHEAD_ESCAPE = 50
@@ -397,6 +411,18 @@ def _screen(code, flags, d, s, t, raw, is_ir, hold, max_lag, NH, T, LAST_RAW, LA
     return code, flags, infl
 
 
+@njit(cache=True, inline="always")
+def _outlier_density(outl, suspect, z, sg, infl, x, p):
+    """Density of "this reading is not of the track" under one component (per metre):
+    the rig's outlier density, plus the crosstalk term for a timing-matched reading (see
+    XT_DENS)."""
+    if not suspect:
+        return outl
+    c = 0 if not math.isnan(z[0]) else 1
+    S = p[0, 0] + sg[c] * sg[c] * infl
+    return outl + XT_DENS * 0.5 * math.erfc((z[c] - x[0]) / math.sqrt(2.0 * S))
+
+
 @njit(cache=True)
 def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev_raw,
                sens_kind, sens_hold, sens_blank, sens_p_blank_drop, sens_p_drop, par,
@@ -481,9 +507,6 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     LAST_RAW[s] = raw
                     LAST_NEW_T[s] = t
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
-        # Another unit pinged while this one listened: crosstalk is a far likelier
-        # explanation of a reading off the track than it is for an ordinary reading.
-        o_dens = outl * SUSPECT_OUTLIER_FACTOR if suspect else outl
         if code == ACCEPTED and NH[d] > 0 and q * (t - T[d]) ** 3 / 3.0 > LOST_SIGMA_M ** 2:
             NH[d] = 0
             RBN[d] = 0
@@ -545,7 +568,11 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                     innov = best_y
                     nis = best_nis
                     # predictive density of a reading outside every gate: the outlier term
-                    ll = math.log(o_dens)
+                    ll = 0.0
+                    for k in range(nh):
+                        ll += W[d, k] * _outlier_density(outl, suspect, z, sg, infl, X[d, k],
+                                                         P[d, k])
+                    ll = math.log(ll)
                     code = CROSSTALK if suspect else GATED
                     _buffer_rejected(d, t, s, z, sg, RBT, RBZ, RBV, RBS, RBN)
                     npass = _reacq_check(d, t, RBT, RBZ, RBV, RBS, RBN, reacq_n, reacq_w, vmax,
@@ -575,7 +602,8 @@ def kalman_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, ev
                         for a in range(2):
                             for b in range(2):
                                 CP[nchild, a, b] = P[d, k, a, b]
-                        CW[nchild] = W[d, k] * o_dens
+                        CW[nchild] = W[d, k] * _outlier_density(outl, suspect, z, sg, infl,
+                                                                X[d, k], P[d, k])
                         CB[nchild] = -1
                         tot += CW[nchild]
                         nchild += 1

@@ -24,10 +24,10 @@ IR triangulation readings
 Echo readings
     The beam mixture of `fusion.noise.BeamMixture` (Thrun, Burgard & Fox 2005, eq. 6.12,
     with the blanking extension) around the particle's range, its hit sigma taken from
-    the reading's decoded sigma. For a crosstalk suspect (another unit pinged while
-    this one listened) the random part, which is the mixture's account of crosstalk
-    (Thrun et al. 2005, §6.3.1), is weighted up by the Kalman path's
-    ``SUSPECT_OUTLIER_FACTOR``. A dropout counts as a reading at the maximum range:
+    the reading's decoded sigma. A reading whose arrival screening matched to another
+    unit's echo meets, besides, the Kalman path's first-arrival crosstalk term
+    (`fusion.estimators._kernels.XT_DENS`) for the particles whose own echo would have
+    come later, ``P(own range > z) = Phi((r - z) / sigma)``. A dropout counts as a reading at the maximum range:
     likely for particles inside the blanking zone (``min_range_m + offset_m``), and also
     for particles anywhere through the mixture's ``w_max`` part.
 Resampling
@@ -143,6 +143,7 @@ N_SENS_COLS = 18
 
 _U53 = 1.0 / 9007199254740992.0  # 2**-53: 53 random bits to a double in [0, 1)
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
+_INV_SQRT_2 = 1.0 / math.sqrt(2.0)
 _SQRT1_2 = math.sqrt(0.5)
 _MASK64 = (1 << 64) - 1
 # Beyond 8 sigma from both ends of [0, z_max] the hit Gaussian's truncation mass differs
@@ -471,9 +472,10 @@ def _beam_lik(z, r, sigma, mix, out):
 
 
 @njit(cache=True)
-def _lik_echo(d, z, sigma, row, ofac, R, W, WN):
-    """Weighted likelihoods ``WN = W p(z | particle)``, the random part scaled by
-    ``ofac``; returns (sum of the hit part, sum of the rest)."""
+def _lik_echo(d, z, sigma, row, xt, R, W, WN):
+    """Weighted likelihoods ``WN = W p(z | particle)``, with the crosstalk density `xt`
+    (0 for a reading no timing match marked) for the particles beyond the reading;
+    returns (sum of the hit part, sum of the rest)."""
     zmax = row[S_ZMAX]
     off = row[S_OFFSET]
     lam = row[S_LAMBDA]
@@ -494,7 +496,9 @@ def _lik_echo(d, z, sigma, row, ofac, R, W, WN):
     for k in range(R.shape[1]):
         h, o, u = _beam(zc, R[d, k] - off, inv_sig, w_hit, w_short, w_max, w_rand, lam, zmax,
                         blank, p_blank, short_num, box, rand)
-        o += ofac * u
+        if xt > 0.0:
+            # the reading is another unit's sound if this unit's own echo came later
+            o += xt * 0.5 * math.erfc((z - R[d, k]) * inv_sig * _INV_SQRT_2)
         w = W[d, k]
         sh += w * h
         so += w * o
@@ -503,14 +507,14 @@ def _lik_echo(d, z, sigma, row, ofac, R, W, WN):
 
 
 @njit(cache=True)
-def _lik_ir(d, volts, infl, row, grid, ofac, R, W, WN):
-    """Weighted likelihoods of an IR voltage, the outlier part scaled by ``ofac``; returns
-    (sum of the Gaussian part, sum of the outlier part)."""
+def _lik_ir(d, volts, infl, row, grid, R, W, WN):
+    """Weighted likelihoods of an IR voltage; returns (sum of the Gaussian part, sum of
+    the outlier part)."""
     # the unit's noise and the reflectivity term of the decoder, at the reading's voltage
     sig = math.hypot(row[S_VSIG], row[S_GAIN] * volts) * math.sqrt(infl)
     eps = row[S_IR_OUT]
     a = (1.0 - eps) * _INV_SQRT_2PI / sig
-    b = ofac * eps / row[S_VSPAN]
+    b = eps / row[S_VSPAN]
     h2 = 0.5 / (sig * sig)
     inv_dr = 1.0 / row[S_DR]
     off = row[S_OFFSET]
@@ -767,9 +771,6 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                                       max_lag, NH, T, LAST_RAW, LAST_NEW_T,
                                       max_lead, T_SRC, LAST_T, AHEAD, LEAP, CLOCK_ODD)
         suspect = (flags & FLAG_CROSSTALK_SUSPECT) != 0
-        # As in the Kalman path: when another unit pinged while this one listened,
-        # crosstalk is a far likelier explanation of a reading off the track.
-        ofac = K.SUSPECT_OUTLIER_FACTOR if suspect else 1.0
         if code == ACCEPTED:
             z = ev_z[i]
             sg = ev_s[i]
@@ -806,9 +807,10 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
                 # The predictive density is wanted for gated readings too (the tuner's
                 # likelihood); a reading the outlier part explains better is gated as well.
                 if is_ir:
-                    ps, po = _lik_ir(d, ev_volts[i], infl, row, grids[s], ofac, R, W, WN)
+                    ps, po = _lik_ir(d, ev_volts[i], infl, row, grids[s], R, W, WN)
                 else:
-                    ps, po = _lik_echo(d, z[0], sg[0] * math.sqrt(infl), row, ofac, R, W, WN)
+                    ps, po = _lik_echo(d, z[0], sg[0] * math.sqrt(infl), row,
+                                       K.XT_DENS if suspect else 0.0, R, W, WN)
                 tot = ps + po
                 ll = math.log(tot) if tot > 0.0 else _LOG_TINY
                 gated = not (best_nis <= gate and ps > po)
@@ -869,7 +871,7 @@ def particle_run(order, ev_t, ev_dir, ev_sensor, ev_z, ev_s, ev_code, ev_flags, 
             tt = t if t > T[d] else T[d]
             _predict(d, tt - T[d], q, split_s, R, V, W, RNG, pri)
             T[d] = tt
-            ps, po = _lik_echo(d, row[S_ZMAX] + row[S_OFFSET], row[S_DROP_SIGMA], row, 1.0,
+            ps, po = _lik_echo(d, row[S_ZMAX] + row[S_OFFSET], row[S_DROP_SIGMA], row, 0.0,
                                R, W, WN)
             tot = ps + po
             if tot > 0.0:
