@@ -539,51 +539,49 @@ class Fuser:
 def _processing_order(sensor, t_meas, ping):
     """Time order; invalid times first (decided harmlessly). Ties go to the earlier ping
     (two echo readings at one instant: the unit that pinged first heard its own sound),
-    then to the sensor index."""
+    then to the sensor index, then to the input order: ``np.lexsort((sensor, ping,
+    t_meas))`` with NaN times as -inf and NaN pings as +inf."""
     if t_meas.shape[0] == 1:
         return np.zeros(1, np.int64)  # one reading (a push)
     key = np.where(np.isfinite(t_meas), t_meas, -np.inf)
-    # Each sensor's readings are nearly always in time order already, so merging those
-    # runs (stably: on equal times the earlier run first) is cheap; only when two readings
-    # share a time do the tie-breaks matter, and then the full three-key sort decides.
+    pkey = np.where(np.isfinite(ping), ping, np.inf)
+    # Each sensor's readings are nearly always in order already, so merging those runs is
+    # cheap (a merge costs readings x runs: with many runs, readings interleaved by a
+    # caller, the sort is the cheaper one).
     starts = np.flatnonzero(sensor[1:] != sensor[:-1]) + 1
     order = np.empty(key.shape[0], np.int64)
-    # (a merge costs readings x runs: with many runs, readings interleaved by a caller,
-    # the sort is the cheaper one)
-    if starts.size > _MERGE_RUNS_MAX or \
-            not _merge_runs(key, np.concatenate(([0], starts, [key.shape[0]])), order):
-        order = np.argsort(key, kind="stable")
-    ks = key[order]
-    tie = ks[1:] == ks[:-1]
-    if not tie.any():
-        return order
-    pkey = np.where(np.isfinite(ping), ping, np.inf)
-    # Equal times (two sensors read at one instant) usually come ordered by ping, then
-    # by sensor; checking each tied neighbour pair is cheaper than the three-key sort.
-    a, b = order[:-1][tie], order[1:][tie]
-    pa, pb = pkey[a], pkey[b]
-    if bool(np.all((pa < pb) | ((pa == pb) & (sensor[a] <= sensor[b])))):
-        return order
-    return np.lexsort((sensor, pkey, key))
+    if starts.size > _MERGE_RUNS_MAX or not _merge_runs(
+            key, pkey, sensor, np.concatenate(([0], starts, [key.shape[0]])), order):
+        order = np.lexsort((sensor, pkey, key))
+    return order
 
 
 _MERGE_RUNS_MAX = 32
 
 
 @njit(cache=True)
-def _merge_runs(key, bounds, order):
-    """Stable merge of the runs ``key[bounds[r]:bounds[r + 1]]`` into `order`; False (and
-    `order` unusable) when a run is not in order."""
+def _merge_runs(key, pkey, sensor, bounds, order):
+    """Stable merge of the runs ``bounds[r]:bounds[r + 1]`` (one sensor each) into `order`
+    by (key, pkey, sensor); False (and `order` unusable) when a run is not in that order."""
     nr = bounds.shape[0] - 1
     for r in range(nr):
         for i in range(bounds[r] + 1, bounds[r + 1]):
-            if not key[i] >= key[i - 1]:
+            if not (key[i] > key[i - 1] or (key[i] == key[i - 1] and pkey[i] >= pkey[i - 1])):
                 return False
     head = bounds[:-1].copy()
     for j in range(order.shape[0]):
         best = -1
         for r in range(nr):
-            if head[r] < bounds[r + 1] and (best < 0 or key[head[r]] < key[head[best]]):
+            h = head[r]
+            if h >= bounds[r + 1]:
+                continue
+            if best < 0:
+                best = r
+                continue
+            b = head[best]
+            # strictly before: on a full tie the earlier run (input order) stays first
+            if key[h] < key[b] or (key[h] == key[b] and (
+                    pkey[h] < pkey[b] or (pkey[h] == pkey[b] and sensor[h] < sensor[b]))):
                 best = r
         order[j] = head[best]
         head[best] += 1
