@@ -10,7 +10,13 @@ free-running so they hear each other: about 700 000 readings). Timed:
   second thread), as the ``rangefuse replay`` command does it; wall-clock and CPU time
   of both threads;
 * the core alone on the whole log (`Fuser.prepare` + `Fuser.run_prepared` on every
-  reading at once), to show how much of the replay is the estimator.
+  reading at once), to show how much of the replay is the estimator;
+* the input and output alone, with nothing computed: reading every dataset of the log,
+  and writing a track file of the same columns, rows and filters through the replay's own
+  writer from arrays already in memory (the replay's track file, read back untimed). With
+  the kernel's own time, no replay of this log and track file can take less, so these
+  bound the ratio any replay can reach against the baseline, which reads and writes the
+  same.
 
 The baseline replay is the same replay with the recursion done by
 `_common.FilterpyKalman` (the kernel ported to Python on filterpy's ``KalmanFilter``).
@@ -24,6 +30,8 @@ from __future__ import annotations
 
 import argparse
 import os
+
+import h5py
 
 import _common as C
 from fusion.fuser import Fuser
@@ -69,6 +77,12 @@ def main(argv=None):
     t_run, _ = C.timed(replay_once, 2)
     t_run_s = t_run.best
 
+    t_read, _ = C.timed(lambda: _read_every_dataset(log), 3)
+    columns = _track_columns(out)
+    floor_out = os.path.join(os.path.dirname(log), "bench-hour.io-floor.h5")
+    t_write, _ = C.timed(lambda: _write_like_track(columns, floor_out), 3)
+    os.remove(floor_out)
+
     # The core alone, every reading in one call.
     f = Fuser(rig)
     t_prep, prep_all = C.timed(lambda: f.prepare(readings, env), 1)
@@ -112,6 +126,11 @@ def main(argv=None):
          f"{t_base.cpu_best:.2f}", f"{base_us:.2f}", f"{nb / t_base.best:,.0f}"],
         ["baseline replay (estimated, see above)", f"{n:,}", f"{est_base:.1f}", "",
          f"{1e6 * est_base / n:.2f}", f"{n / est_base:,.0f}"],
+        ["input/output alone: reading the log", f"{n:,}", f"{t_read.best:.3f}",
+         f"{t_read.cpu_best:.3f}", f"{1e6 * t_read.best / n:.3f}", f"{n / t_read.best:,.0f}"],
+        ["input/output alone: writing the track file", f"{n:,}", f"{t_write.best:.3f}",
+         f"{t_write.cpu_best:.3f}", f"{1e6 * t_write.best / n:.3f}",
+         f"{n / t_write.best:,.0f}"],
     ]
     print(C.table(rows, ["what", "readings", "wall s", "CPU s", "us/reading", "readings/s"]))
     print()
@@ -135,6 +154,62 @@ def main(argv=None):
     print(f"ratio, baseline replay / replay.run: {ratio:,.1f}x wall-clock, {ratio_cpu:,.1f}x "
           f"CPU  (baseline run on the first {t_end:g} s and scaled per reading)  "
           f"[target >= 50x: {C.verdict(min(ratio, ratio_cpu) >= 50 and equal_work)}]")
+    # The ceiling: a replay whose decoding, screening and diagnostics cost nothing still
+    # reads the log, runs the estimator and writes the track file; the baseline reads and
+    # writes the same. (The kernel at its rate on the baseline slice, the faster figure.)
+    io_wall = t_read.best + t_write.best
+    io_cpu = t_read.cpu_best + t_write.cpu_best
+    kern_wall = n * t_kb.best / nb
+    kern_cpu = n * t_kb.cpu_best / nb
+    base_rec = n * base_us * 1e-6
+    base_rec_cpu = n * t_base.cpu_best / nb
+    print(f"ceiling, if decoding, screening and diagnostics cost nothing (log read "
+          f"{t_read.cpu_best:.3f} s + kernel {kern_cpu:.3f} s + track file "
+          f"({os.path.getsize(out) / 1e6:.0f} MB) written {t_write.cpu_best:.3f} s CPU): "
+          f"{(io_wall + base_rec) / (io_wall + kern_wall):,.1f}x wall-clock, "
+          f"{(io_cpu + base_rec_cpu) / (io_cpu + kern_cpu):,.1f}x CPU; the replay spends "
+          f"{t_run.cpu_best - io_cpu - kern_cpu:.2f} s CPU beyond these")
+
+def _read_every_dataset(path):
+    """Read every dataset of an HDF5 file into memory (what any replay reads at least)."""
+    def visit(_name, obj):
+        if isinstance(obj, h5py.Dataset):
+            obj[()]
+    with h5py.File(path, "r") as f:
+        f.visititems(visit)
+
+
+def _track_columns(path):
+    """The decision and track columns of a track file, in memory: ``{group: {column:
+    array}}`` for ``decisions`` and each ``track/<direction>``."""
+    from replay.run import _DECISION_COLS, _TRACK_COLS
+    out = {}
+    with h5py.File(path, "r") as f:
+        out["decisions"] = {c[0]: f["decisions"][c[0]][()] for c in _DECISION_COLS}
+        for d in f["track"]:
+            out[f"track/{d}"] = {c[0]: f["track"][d][c[0]][()] for c in _TRACK_COLS}
+    return out
+
+
+def _write_like_track(columns, path, window=32768):
+    """Write `columns` as the replay writes its track file (its own writer thread,
+    chunking, compression and checksums), a window of rows at a time."""
+    from replay.logfile import LIBVER
+    from replay.run import _DECISION_COLS, _TRACK_COLS, _Appender, _ChunkWriter
+    if os.path.exists(path):
+        os.remove(path)
+    with h5py.File(path, "w", libver=LIBVER) as f, _ChunkWriter() as w:
+        apps = {g: _Appender(f.create_group(g), _DECISION_COLS if g == "decisions"
+                             else _TRACK_COLS, w) for g in columns}
+        longest = max(len(next(iter(c.values()))) for c in columns.values())
+        for i in range(0, longest, window):
+            for g, cols in columns.items():
+                part = {k: v[i:i + window] for k, v in cols.items()}
+                if len(next(iter(part.values()))):
+                    apps[g].append(**part)
+        for a in apps.values():
+            a.flush()
+        w.wait()
 
 
 if __name__ == "__main__":
