@@ -1,6 +1,6 @@
 """The bad-input catalogue: one test per class of bad input, through the real entry point.
 
-The contract is the project's (DESIGN.md, "Conventions"): a user error on the command
+The contract is the project's (DEVELOPERS.md, "Conventions"): a user error on the command
 line is one line on stderr that names the file, the group/dataset/field, the row or
 TOML line and what was expected, with exit status 2 and no traceback (``--debug``
 shows it); a library call raises a `fusion.errors.RangefuseError` subclass carrying
@@ -295,10 +295,22 @@ def test_absurd_values(tmp_path, capsys, sensor, key, row, value, words, decided
     assert _code_of(track, sensor, row) == decided
 
 
-def test_absurd_air_temperature_is_a_problem_and_the_fuser_falls_back(tmp_path, capsys):
+def test_absurd_air_temperature_is_a_problem_and_the_fuser_ignores_it(tmp_path, capsys):
     env = {"air": ("air_temperature", np.arange(4.0), np.array([21.0, 500.0, 21.0, 21.0]))}
     path = _write(tmp_path / "hot.h5", env=env)
     _err_line(capsys, ["check", path], path, "/environment/air/value", "row 1")
+    # The replay treats the 500 degC sample as failed (fusion.Fuser.push_air: a value
+    # outside -60..90 degC is a failed sample, and carries no value): the echo readings
+    # after it keep the last good sample's 21 degC, and none is decoded with the fallback
+    # temperature while a good sample is fresh.
+    track = str(tmp_path / "t.h5")
+    assert main(["replay", path, "-o", track, "--quiet"]) == 0
+    d = _decisions(track)
+    echo = d["sensor"] == list(RIG.sensors).index("echo")
+    after = echo & (d["t_s"] >= 1.0) & (d["t_s"] < 2.0)
+    assert after.sum() == 20
+    assert np.all(d["temp_c"][after] == 21.0)
+    assert not np.any(d["flags"][echo] & D.FLAG_TEMP_FALLBACK)
 
 
 def test_echo_time_beyond_the_timeout_is_a_dropout_not_a_range(tmp_path):
@@ -520,17 +532,31 @@ def test_folder_that_does_not_exist(tmp_path, capsys, good):
         write_log(out, RIG_TOML, [], created_utc=WHEN)
 
 
-def test_folder_that_cannot_be_written(tmp_path, capsys, good):
+def test_folder_that_cannot_be_written(tmp_path, capsys, monkeypatch, good):
+    # A folder without write permission. Root may write anywhere, and CI runs as root, so
+    # the permission answer is what the test controls: the folder is made read-only, and
+    # os.access is made to say so too for a user (root) whom the mode does not stop.
     ro = tmp_path / "ro"
     ro.mkdir()
     os.chmod(ro, 0o555)
+    real_access = os.access
+    monkeypatch.setattr(os, "access", lambda p, mode, *a, **k: False if os.fspath(p) == str(ro)
+                        and mode & os.W_OK else real_access(p, mode, *a, **k))
     try:
-        if os.access(ro, os.W_OK):
-            pytest.skip("running as a user who may write anywhere (root)")
         out = str(ro / "t.h5")
         _err_line(capsys, ["replay", good, "-o", out], out, "-o", "cannot be written")
+        assert os.listdir(ro) == []
     finally:
         os.chmod(ro, 0o755)
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self"), reason="needs a Linux /proc")
+def test_folder_that_refuses_the_file_although_access_allows_it(capsys, good):
+    # /proc lets no one, root included, create a file, whatever os.access answers: the
+    # failure comes from the write itself and must still be one line, exit 2.
+    out = "/proc/rangefuse-test.track.h5"
+    _err_line(capsys, ["replay", good, "-o", out], out, "-o", "cannot create a file")
+    assert not os.path.exists(out)
 
 
 # ============================================================ calibrate

@@ -1,9 +1,9 @@
 """Property and fuzz tests: decoders, the log reader and the streaming fuser never fail
 in an unplanned way, whatever they are fed.
 
-The properties are the project's contract (DESIGN.md: every reading in gets exactly one
-decision out; user errors raise the `fusion.errors` family; bad *readings* are flagged,
-never raised) and two facts of estimation:
+The properties are the project's contract (DEVELOPERS.md, "Conventions": every reading
+in gets exactly one decision out; user errors raise the `fusion.errors` family; bad
+*readings* are flagged, never raised) and two facts of estimation:
 
 - a covariance matrix is symmetric positive definite; the Joseph-form update keeps it so
   under rounding (Bucy & Joseph, *Filtering for Stochastic Processes with Applications to
@@ -233,12 +233,13 @@ def test_damaged_data_or_a_cut_file_is_detected_on_read(clean_log, tmp_path, hit
 
 def _read_in_child(path, expected):
     """Read a damaged log in a forked child (a damaged header can crash the HDF5 library
-    itself); returns "same", "error", "silent", "escaped: <exception>" or "crashed"."""
+    itself); returns "same", "error", "silent", "escaped: <exception>", "hung" (no answer
+    within `_CHILD_LIMIT_S`: an endless loop, not a slow machine) or "crashed: <how>"."""
     r, w = os.pipe()
     pid = os.fork()
     if pid == 0:  # pragma: no cover - runs in the child
         os.close(r)
-        signal.alarm(5)
+        signal.alarm(_CHILD_LIMIT_S)
         try:
             got = _read_everything(path)
             try:
@@ -255,8 +256,16 @@ def _read_in_child(path, expected):
     os.close(w)
     out = os.read(r, 200).decode()
     os.close(r)
-    os.waitpid(pid, 0)
-    return out or "crashed"
+    _, status = os.waitpid(pid, 0)
+    if out:
+        return out
+    if os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGALRM:
+        return "hung"
+    return f"crashed: {'signal %d' % os.WTERMSIG(status) if os.WIFSIGNALED(status) else status}"
+
+
+# A read of this small log takes milliseconds; only a loop that never ends reaches this.
+_CHILD_LIMIT_S = 60
 
 
 @pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork to survive a crash")
@@ -383,7 +392,8 @@ def test_process_refuses_an_unknown_sensor_by_name():
        usable=st.lists(st.booleans(), min_size=80, max_size=80),
        cuts=st.lists(st.integers(0, 80), max_size=4), hold=st.sampled_from([0.0, 0.03]))
 def test_stuck_screen_gives_the_same_answer_chunk_by_chunk(values, usable, cuts, hold):
-    """Streaming and batch must agree (DESIGN.md: one implementation serves both)."""
+    """Streaming and batch must agree (DEVELOPERS.md: push goes through exactly the same code
+    as a replay)."""
     from fusion.screening import stuck_readings
     raw = np.array(values)
     ok = np.array(usable[: len(raw)])

@@ -2,7 +2,10 @@
 produce logs that rangefuse reads and `rangefuse check` calls valid."""
 import os
 import re
-import tomllib
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10: the package depends on tomli there
+    import tomli as tomllib
 from pathlib import Path
 
 import h5py
