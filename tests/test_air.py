@@ -35,10 +35,13 @@ def test_humidity_raises_speed_at_20c():
 
 
 def test_slope_near_room_temperature():
-    # About 0.6 m/s per degC near room temperature (common practice, no source; also the
-    # project DESIGN notes).
+    # About 0.6 m/s per degC near room temperature (common practice, no source). It
+    # follows from the ideal gas, c proportional to sqrt(T_kelvin): dc/dT = c / (2 T_K) =
+    # 343.2 / (2 * 293.15) = 0.585 m/s per K at 20 degC (343.2 m/s: textbook value, from
+    # memory).
     slope = (speed_of_sound(25.0) - speed_of_sound(15.0)) / 10.0
     assert slope == pytest.approx(0.6, abs=0.02)
+    assert slope == pytest.approx(343.2 / (2 * 293.15), rel=0.01)
 
 
 def test_echo_range_and_time_are_inverse():
@@ -50,11 +53,22 @@ def test_echo_range_and_time_are_inverse():
     assert echo_range(5.83e-3, 20.0) == pytest.approx(1.0, abs=0.002)
 
 
-def test_range_per_kelvin_matches_numeric_derivative():
-    # For a fixed echo time, d(range)/dT = range / (2 T_kelvin) for an ideal gas
-    # (c proportional to sqrt(T)); check against a central difference of echo_range.
+def test_range_per_kelvin_is_the_ideal_gas_derivative():
+    # For a fixed echo time, range = c t / 2 with c = sqrt(gamma R T_K / M) for dry air
+    # (the ideal-gas speed of sound; common practice, no source), so
+    # d(range)/dT = range / (2 (T + 273.15)). Asserted directly, in dry air, where that
+    # relation is exact.
+    for r in (0.25, 1.0, 3.7):
+        for temp in (-15.0, 0.0, 20.0, 35.0):
+            assert range_per_kelvin(r, temp) == pytest.approx(r / (2 * (temp + 273.15)),
+                                                              rel=1e-12)
+    # 1 m at 20 degC: 1.706 mm per K, the "about 0.17 % of range per kelvin" of the trade
+    # (common practice, no source).
+    assert range_per_kelvin(1.0, 20.0) == pytest.approx(0.0017, rel=0.01)
+    # And against a central difference of the module's own dry-air echo_range.
     t = 0.01
     for temp in (-15.0, 20.0, 35.0):
         h = 1e-3
         numeric = (echo_range(t, temp + h) - echo_range(t, temp - h)) / (2 * h)
         assert range_per_kelvin(echo_range(t, temp), temp) == pytest.approx(numeric, rel=1e-6)
+

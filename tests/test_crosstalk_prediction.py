@@ -46,7 +46,8 @@ def test_predicted_arrival_marks_the_earlier_reading_of_a_pair():
 
 
 def test_predicted_arrival_off_by_more_than_the_tolerance_does_not_match():
-    # 2 ms from B's predicted arrival is 34 cm of two-way path: not B's echo.
+    # 2 ms from B's predicted arrival is about 69 cm of two-way path at 343 m/s, i.e.
+    # 34 cm of range, eight times the 0.25 ms timing tolerance: not B's echo.
     p_b, tof_b = _b_pings()
     assert not _classify(0.30 + _tof(0.6) + 2e-3, p_b, tof_b)[1][0]
 

@@ -128,7 +128,8 @@ def test_power_up_temperature_precedence_and_missing():
 def test_fixed_speed_unit_in_cold_air():
     # A unit assuming 343.2 m/s (20 degC) in 0 degC air reads long by c(20)/c(0); the
     # corrected range is 331.3/343.2 of the report, the ~3.5 % error of a 20 degC mistake
-    # (textbook speeds, from memory; DESIGN notes).
+    # (textbook speeds at 0 and 20 degC, from memory; about 0.17 % per kelvin, common
+    # practice, no source).
     s = EchoRanger(name="e1", output="pulse_width", compensation="fixed", tick_s=0.0)
     m = decode1(s, [1.0 * 2 / 343.2], temp_c=0.0)
     assert m.z_m[0, 0] == pytest.approx(331.3 / 343.2, abs=0.0006)
@@ -184,8 +185,11 @@ def test_echo_time_codes():
 
 
 def test_default_timeout():
+    # docs/rig.md, `timeout_s`: default 2 max_range_m / 340 x 1.1, the round trip to the
+    # maximum range at 340 m/s plus a 10 % margin, enough for air down to about -35 degC.
     s = EchoRanger(name="e1", max_range_m=5.0)
     assert s.timeout_s == pytest.approx(2 * 5.0 / 340 * 1.1)
+    assert s.timeout_s > 2 * 5.0 / speed_of_sound(-35.0)
 
 
 def test_serial_codes():
@@ -266,6 +270,7 @@ def test_dict_round_trip():
     s = EchoRanger(name="left", direction="rear", output="serial", compensation="power_up",
                    max_range_m=6.0, offset_m=0.02, ping_logged=True, power_up_temp_c=4.0)
     d = s.to_dict()
+    # the default timeout, as docs/rig.md (`timeout_s`) states it
     assert d["dropout_report_m"] == 6.0 and d["timeout_s"] == pytest.approx(2 * 6 / 340 * 1.1)
     assert EchoRanger.from_dict(d) == s
     # The NaN default ("first sample of the log") survives a round trip as NaN.

@@ -26,6 +26,7 @@ import pytest
 from fusion import decisions as D
 from fusion.fuser import Fuser
 from fusion.screening import air_at
+from fusion.sensors.air import speed_of_sound
 from replay.run import run
 from replay.scenario import load_scenario, scenario_from_toml
 from replay.simulate import CROSSTALK as LABEL_CROSSTALK, DROPOUT as LABEL_DROPOUT
@@ -169,7 +170,11 @@ def test_stuck_ir_ranger_is_rejected_as_stuck(tmp_path):
     codes = r.dec["decision"][win]
     fused = np.mean(codes < D.FIRST_REJECT)
     # The frozen output is decided `stuck` once it has outlived the noise (a handful of
-    # measurement cycles); it is no longer fused after that.
+    # measurement cycles); it is no longer fused after that. 0.9 is a design figure, not a
+    # published value: the stuck rule needs at least 8 of the unit's 30 ms cycles
+    # (docs/track-format.md, code 11; hold_s in datasets/tuning-run.rig.toml), 0.21 s to
+    # the 8th, about 4 % of the 5 s fault, whose readings are `accepted` or `held` until
+    # then; 0.9 leaves room beyond that.
     assert np.mean(codes == D.STUCK) > 0.9
     late = r.dec["t_s"][win] >= f.from_s + 0.5
     assert not np.any(codes[late] < D.FIRST_REJECT)
@@ -185,7 +190,18 @@ def test_stuck_echo_ranger_does_not_drag_the_track(tmp_path):
     f = r.fault
     _common_checks(r)
     codes = r.dec["decision"][r.sensor_rows("echo_a", f.from_s, f.to_s)]
-    assert np.sum(codes < D.FIRST_REJECT) <= 8      # the run must first outlive the noise
+    # The run must first outlive the noise. The stuck rule (docs/track-format.md, code
+    # 11): n cycles with p^(n-1) < 1e-6, at least 8, where p is the chance that two noisy
+    # readings of a still target give one raw value. For a tick far below the noise
+    # sigma_t of the echo time, p is about tick / (2 sqrt(pi) sigma_t): the difference of
+    # two readings is N(0, 2 sigma_t^2), whose density at 0 is 1 / (2 sqrt(pi) sigma_t)
+    # (common practice, no source). Here p ~ 0.016 asks for 5 cycles, so the floor of 8
+    # holds: the first 7 equal readings may be fused, from the 8th on they are stuck.
+    s = r.sc.rig.sensors["echo_a"]
+    sigma_t = 2 * s.sigma_m / speed_of_sound(20.0)
+    p = s.tick_s / (2 * math.sqrt(math.pi) * sigma_t)
+    limit = max(8, 1 + math.ceil(math.log(1e-6) / math.log(p)))
+    assert np.sum(codes < D.FIRST_REJECT) <= limit - 1
     inside = (r.t >= f.from_s) & (r.t < f.to_s)
     assert np.all(np.abs(r.err[inside]) < ERROR_BOUND_M)
     r.record("stuck (echo, variant)", f"{int(np.sum(codes < D.FIRST_REJECT))} stuck readings "
@@ -199,7 +215,11 @@ def test_dead_echo_ranger_leaves_the_track_to_the_others(tmp_path):
     _common_checks(r)
     assert not np.any(r.sensor_rows(f.target, f.from_s, f.to_s))
     inside = (r.t >= f.from_s) & (r.t < f.to_s)
-    # the other rangers keep fusing: no stretch without a fused state longer than 0.1 s
+    # the other rangers keep fusing: no stretch without a fused state longer than 0.1 s.
+    # 0.1 s is a design figure, not a published value: about three of the IR ranger's
+    # 30 ms measurement cycles (hold_s in datasets/tuning-run.rig.toml), and the echo
+    # ranger left fires every round-robin cycle besides; a longer gap means the live
+    # rangers stopped being fused too.
     assert np.max(np.diff(r.t[inside])) < 0.1
     assert np.all(r.ok()[inside])
     r.record("dead (echo_b)", "carried by ir_front and echo_a")
@@ -235,7 +255,10 @@ def test_crosstalk_burst_readings_are_rejected(tmp_path):
     xt = labels == LABEL_CROSSTALK
     rejected = np.mean(codes[xt] >= D.FIRST_REJECT)
     # A burst lands at a random point of the listening window; one that lands within
-    # the gate of the true echo is indistinguishable from it and harmless.
+    # the gate of the true echo is indistinguishable from it and harmless (the error bound
+    # below checks that). 0.9 is a design figure, not a published value: the gate (a few
+    # cm) is a small part of the 4 m the window spans, so nearly all bursts fall outside
+    # it, and the tenth left over is room for those that land near the track.
     assert xt.sum() > 40 and rejected > 0.9
     inside = (r.t >= f.from_s) & (r.t < f.to_s)
     assert np.all(np.abs(r.err[inside]) < ERROR_BOUND_M)

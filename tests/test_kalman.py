@@ -139,7 +139,7 @@ def test_linear_problem_equals_filterpy(max_hypotheses):
 
 
 def test_joseph_update_keeps_P_positive_definite_over_a_long_run():
-    # Joseph form (Bar-Shalom et al. 2001, §5.2): with measurement
+    # Joseph form (Bar-Shalom et al. 2001, §5.2.3 — from memory): with measurement
     # variances 14 orders of magnitude apart, gains near 1 and time steps from 0.1 ms to
     # 30 s, P must stay symmetric positive definite, and the range variance after an
     # update can never exceed the prior one nor the reading's own variance

@@ -86,8 +86,10 @@ MIX = BeamMixture(w_hit=0.7, w_short=0.15, w_max=0.05, w_rand=0.1, sigma_hit_m=0
 
 
 def test_components_against_scipy():
-    # Thrun, Burgard & Fox (2005), eqs. 6.4-6.10: a Gaussian truncated to [0, z_max], an
-    # exponential truncated to [0, z*], a uniform on [0, z_max]. Reference: scipy.stats.
+    # Thrun, Burgard & Fox (2005), §6.3, the beam model's components, which their mixture
+    # (eq. 6.12, as tests/test_particle.py cites it) combines; section and equation numbers
+    # from memory: a Gaussian truncated to [0, z_max], an exponential truncated to
+    # [0, z*], a uniform on [0, z_max]. Reference: scipy.stats.
     z = np.linspace(0.0, 3.98, 41)[:, None]
     r = np.array([0.05, 1.0, 2.5, 3.99])
     lc = MIX.component_logpdf(z, r)

@@ -3,8 +3,9 @@
 References used beside the checks: Kalman (1960) — the Kalman filter is the exact
 posterior of a linear-Gaussian model; Gordon, Salmond & Smith (1993) and Douc & Cappé
 (2005) for the filter and systematic resampling; Kong, Liu & Wong (1994) for the
-effective sample size; Thrun, Burgard & Fox (2005) eq. 6.12 for the beam mixture;
-filterpy and scipy as reference libraries. Particle counts are small to keep this fast.
+effective sample size; Thrun, Burgard & Fox (2005) §6.3, eq. 6.12 (from memory) for the
+beam mixture; filterpy and scipy as reference libraries. Particle counts are small to keep
+this fast.
 """
 import dataclasses
 import math
@@ -118,8 +119,9 @@ def test_normal_generator_against_scipy():
 # ----------------------------------------------------------------- likelihoods
 def test_echo_likelihood_is_the_beam_mixture():
     # The kernel's echo likelihood must be fusion.noise.BeamMixture (Thrun, Burgard & Fox
-    # 2005, eq. 6.12, plus the project's blanking term), so both estimators and the tuner
-    # share one model. Ranges cover negative, blanked, normal and beyond-max particles.
+    # 2005, eq. 6.12, from memory, plus the project's blanking term), so both estimators
+    # and the tuner share one model. Ranges cover negative, blanked, normal and beyond-max
+    # particles.
     mix = BeamMixture(w_hit=0.7, w_short=0.15, w_max=0.05, w_rand=0.1, sigma_hit_m=0.02,
                       lambda_short=1.3, z_max_m=4.0, max_width_m=0.01, blank_range_m=0.15,
                       p_blank_dropout=0.9)
@@ -208,11 +210,26 @@ def test_agrees_with_kalman_on_linear_gaussian_case():
     se = batches.std(ddof=1) / math.sqrt(len(batches))
     assert abs(zdiff.mean()) < 4 * se
     # Monte-Carlo error of a resampling filter: a few times sigma / sqrt(N), not more.
+    # A weighted mean of particles whose effective sample size stays above
+    # resample_below * N (the filter resamples below it) has an error of at most
+    # sigma / sqrt(resample_below * N), sqrt(2) in these units; earlier resamplings add
+    # their own share (Chopin, "Central limit theorem for sequential Monte Carlo methods",
+    # Ann. Statist. 32(6), 2004, from memory), which has no closed form here. The bound 4
+    # (16 times the variance of N independent draws) is a design figure, not a published
+    # value: room for that share, while a filter whose particles degenerate fails it.
     assert np.sqrt(np.mean(zdiff ** 2)) < 4.0
-    # The posterior sigma: within 15 % at every step, and no bias in it either.
+    # The posterior sigma. A sample standard deviation of n independent draws has a
+    # relative standard error of about 1 / sqrt(2 n) (common practice, no source); with
+    # n = resample_below * N (the lowest effective sample size the filter lets stand) it is
+    # 3.2 %. Every one of the ~580 steps within 4.5 of them (a Gaussian passes that at all
+    # 580 with probability 0.996, by the union bound), and no bias: the mean ratio within
+    # 4 batch-means standard errors of 1, as for the mean above.
     ratio = sig_pf / sig_kf
-    assert np.all(np.abs(ratio - 1.0) < 0.15)
-    assert abs(np.median(ratio) - 1.0) < 0.03
+    se_sigma = 1.0 / math.sqrt(2 * rig.estimator.resample_below * n_part)
+    assert np.all(np.abs(ratio - 1.0) < 4.5 * se_sigma)
+    r_batches = ratio[: len(ratio) // 10 * 10].reshape(10, -1).mean(axis=1)
+    se_ratio = r_batches.std(ddof=1) / math.sqrt(len(r_batches))
+    assert abs(np.mean(ratio) - 1.0) < 4 * se_ratio
 
 
 # ----------------------------------------------------------------- the near-zone fold-back
@@ -229,9 +246,9 @@ STATIC = dict(accel_psd=1e-12, init_rate_sigma_mps=1e-6)
 
 
 def test_fold_back_stays_bimodal_without_other_evidence():
-    # Below the peak one voltage fits a near and a far range (DESIGN: the near-zone
-    # fold-back). With IR readings alone the posterior must keep both: n_hyp 2 and
-    # ambiguous decisions throughout.
+    # Below the peak one voltage fits a near and a far range (docs/rig.md: "Each reading
+    # below the curve's peak voltage has two range candidates"). With IR readings alone
+    # the posterior must keep both: n_hyp 2 and ambiguous decisions throughout.
     rig = _rig([_ir()], particles=1000, seed=2, **STATIC)
     t, v = _static_ir_readings()
     b = ParticleFuser(rig).process({"ir": (t, v)})
@@ -277,7 +294,14 @@ def test_fold_back_branch_mass_matches_exact_posterior():
     assert np.all(np.abs(exact - 0.5) < 0.05)
     se = max(est.std(ddof=1), 0.02) / math.sqrt(len(est))
     assert abs(np.mean(est - exact)) < 4 * se
-    assert np.all(np.abs(est - exact) < 0.3)
+    # Each run on its own: a resampling moves a branch's mass p by a binomial step of
+    # variance p (1 - p) / N (the multinomial resampling of Gordon et al. 1993; genetic
+    # drift, common practice, no source), and systematic resampling, whose counts are
+    # within one of N w (test above), is taken to do no worse. With at most one resampling
+    # per later reading and p about 1/2 the drift's standard deviation is at most
+    # sqrt(0.25 (n - 1) / N) = 0.06; every run within 5 of them.
+    drift_sd = math.sqrt(0.25 * (len(t) - 1) / rig.estimator.particles)
+    assert np.all(np.abs(est - exact) < 5 * drift_sd)
 
 
 def test_echo_reading_resolves_the_fold_back():
@@ -300,9 +324,12 @@ def test_echo_reading_resolves_the_fold_back():
 
 def test_echo_dropouts_favour_the_blanked_branch():
     # "Nothing heard" from an echo ranger whose blanking zone (0.15 m) holds the near
-    # candidate but not the far one is evidence for the near branch (DESIGN: "including
-    # 'nothing inside my blanking range'"). By Bayes' rule the odds move by the beam
-    # mixture's dropout likelihood ratio, near (0.06 m) against far (0.40 m), per dropout.
+    # candidate but not the far one is evidence for the near branch (Thrun, Burgard & Fox
+    # 2005, ch. 6: a sensor model gives the probability of every outcome, a miss
+    # included; the blanking term is the project's extension, fusion.noise.BeamMixture,
+    # docs/rig.md `min_range_m`: "blanking minimum (ring-down)"). By Bayes' rule the odds
+    # move by the beam mixture's dropout likelihood ratio, near (0.06 m) against far
+    # (0.40 m), per dropout.
     echo = EchoRanger(name="echo", direction="front")
     rig = _rig([_ir(), echo], particles=1000, seed=5, **STATIC)
     fuser = ParticleFuser(rig)
@@ -352,8 +379,9 @@ def _mixed_readings(n=300, seed=9):
 
 
 def test_one_decision_per_reading_and_valid_covariance():
-    # DESIGN: every reading in gets exactly one decision out; the state covariance is a
-    # covariance (finite, P00 > 0, P11 > 0, det > 0) wherever a track exists.
+    # Every reading in gets exactly one decision out (docs/track-format.md: "Every reading
+    # of the log has exactly one row"); the state covariance is a covariance (finite,
+    # P00 > 0, P11 > 0, det > 0) wherever a track exists.
     rig = _mixed_rig(particles=300, seed=1)
     readings = _mixed_readings()
     b = ParticleFuser(rig).process(readings)
@@ -473,6 +501,7 @@ def test_replay_runs_the_particle_estimator(tmp_path):
     import h5py
     from pathlib import Path
 
+    from replay import metrics as M
     from replay.run import run
     data = Path(__file__).resolve().parent.parent / "datasets"
     rig = Rig.load(data / "cold-store-dock.rig.toml")
@@ -485,8 +514,30 @@ def test_replay_runs_the_particle_estimator(tmp_path):
     with h5py.File(tmp_path / "pf.track.h5", "r") as f:
         assert f.attrs["estimator"] == "particle"
         assert f["decisions/decision"].shape[0] == res_pf.n_readings
-    for zone in ("near", "all"):
+        trk = {k: f["track/front"][k][:] for k in ("t_s", "range_m", "sigma_m")}
+        truth = np.interp(trk["t_s"], f["truth/front/t_s"][:], f["truth/front/range_m"][:])
+    # Coverage: a consistent Gaussian estimate has 2 Phi(2) - 1 = 0.954 of its errors
+    # within two reported sigmas (Bar-Shalom, Li & Kirubarajan 2001, §5.4, consistency of
+    # the estimation error, from memory). Over n errors its Monte-Carlo standard error
+    # would be sqrt(p (1 - p) / n), 0.003 for the ~5 000 near-zone errors, were they
+    # independent; they are not (the track carries its error from one reading to the
+    # next), so the standard error is also taken from batch means of the coverage of the
+    # track file's fused states (10 batches, as above; about 0.004 near and 0.01 overall
+    # here) and the larger of the two used. Coverage must not fall more than 4 of them
+    # below 0.954 (one-sided: covering more is cautious, not inconsistent).
+    p_cover = stats.norm.cdf(2.0) - stats.norm.cdf(-2.0)
+    zone_of = M.zone_of(truth, M.zone_edges(pf_rig, "front"))
+    inside = np.abs(trk["range_m"] - truth) <= 2 * trk["sigma_m"]
+    for zone, sel in (("near", zone_of == 0), ("all", np.ones(truth.size, bool))):
         e_pf = res_pf.errors("front")[zone]
         e_kf = res_kf.errors("front")[zone]
+        # 25 % is a design figure, not a published value: the two estimators model
+        # outliers differently (the beam mixture against the Gaussian sum's outlier
+        # child), so they differ by more than the particles' Monte-Carlo error, and "about
+        # as accurate" allows that much.
         assert e_pf["rmse_m"] < 1.25 * e_kf["rmse_m"]
-        assert e_pf["cover2"] > 0.85
+        x = inside[sel].astype(float)
+        batch = x[: x.size // 10 * 10].reshape(10, -1).mean(axis=1)
+        se = max(batch.std(ddof=1) / math.sqrt(10),
+                 math.sqrt(p_cover * (1 - p_cover) / e_pf["n"]))
+        assert e_pf["cover2"] > p_cover - 4 * se, (zone, e_pf["cover2"], se)

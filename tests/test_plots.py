@@ -344,7 +344,8 @@ def test_diagnostics_innovation_bounds_are_two_sqrt_s(replayed):
     m = (D.is_accepted(dec["decision"]) & (dec["decision"] != D.REACQUIRED)
          & (dec["sensor"] == sensor) & (dec["nis"] > 0))
     nu, nis = dec["innovation_m"][m], dec["nis"][m]
-    # NIS = nu^2 / S, so sqrt(S) = |nu| / sqrt(NIS) (Bar-Shalom et al. 2001, eq. 5.4.2-8)
+    # NIS = nu^2 / S, so sqrt(S) = |nu| / sqrt(NIS) (Bar-Shalom et al. 2001, §5.4.2, from
+    # memory; also docs/track-format.md, column `nis`)
     upper = 2e3 * np.abs(nu) / np.sqrt(nis)
     verts = arts["innovband:left:echo_left"].get_paths()[0].vertices[:, 1]
     assert verts.max() == pytest.approx(upper.max())
@@ -527,7 +528,8 @@ def test_csv_one_decision_row_per_reading_with_names(replayed, tmp_path):
     with open(paths[1], newline="") as fh:
         rows = list(csv.DictReader(fh))
     assert list(rows[0]) == list(export.DECISION_CSV_COLUMNS)
-    # every reading in gets exactly one decision out (DESIGN.md)
+    # every reading in gets exactly one decision out (docs/track-format.md: "Every reading
+    # of the log has exactly one row")
     assert len(rows) == sum(replayed["counts"].values())
     seen = {(r["sensor"], int(r["row"])) for r in rows}
     assert seen == {(s, i) for s, n in replayed["counts"].items() for i in range(n)}

@@ -58,7 +58,8 @@ COMPENSATIONS = ("host", "fixed", "power_up", "self")
 DEFAULT_FRAME_PATTERN = r"^R(?P<range>\d{1,5})\r?$"
 DEFAULT_FRAME_FORMAT = "R{count:04d}"
 
-# Default timeout: the round trip to max range at a cold-air 340 m/s, plus 10 % margin.
+# Default timeout: the round trip to max range at 340 m/s (about 15 degC), plus 10 % margin:
+# an echo from max range in air down to about -35 degC (309 m/s) still comes inside it.
 _TIMEOUT_SPEED_MPS = 340.0
 _TIMEOUT_MARGIN = 1.1
 _SQRT12 = math.sqrt(12.0)
