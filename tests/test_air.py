@@ -72,3 +72,21 @@ def test_range_per_kelvin_is_the_ideal_gas_derivative():
         numeric = (echo_range(t, temp + h) - echo_range(t, temp - h)) / (2 * h)
         assert range_per_kelvin(echo_range(t, temp), temp) == pytest.approx(numeric, rel=1e-6)
 
+
+def test_range_per_kelvin_in_humid_air_follows_the_humid_speed():
+    # Humid air's speed of sound climbs faster with temperature than dry air's, because at
+    # a fixed relative humidity its vapour fraction rises with temperature (Cramer 1993,
+    # eq. 15, with the saturation pressure of Davis 1992; both from memory): the slope of
+    # range for a fixed echo time is that of echo_range with humidity, above the dry one.
+    t = 0.01
+    for temp, rh in ((20.0, 0.5), (35.0, 1.0), (0.0, 0.8)):
+        h = 1e-3
+        numeric = (echo_range(t, temp + h, rh) - echo_range(t, temp - h, rh)) / (2 * h)
+        r = echo_range(t, temp, rh)
+        assert range_per_kelvin(r, temp, rh) == pytest.approx(numeric, rel=1e-4)
+        assert range_per_kelvin(r, temp, rh) > range_per_kelvin(r, temp)
+    # per reading: dry where the humidity is 0
+    r = np.array([1.0, 1.0])
+    both = range_per_kelvin(r, np.array([20.0, 20.0]), np.array([0.0, 0.5]))
+    assert both[0] == range_per_kelvin(1.0, 20.0) and both[1] > both[0]
+

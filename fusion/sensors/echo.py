@@ -405,7 +405,7 @@ class EchoRanger:
                 # The unit's own sensor tracks the air; our temperature error does not enter.
                 dr_dt = np.zeros(n)
             else:
-                dr_dt = range_per_kelvin(r_sensor, temp)
+                dr_dt = range_per_kelvin(r_sensor, temp, rh)
 
             bad |= ~np.isfinite(t)
             unusable = bad | dropout
