@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import re
 import textwrap
 
 from fusion.errors import InputError
@@ -83,6 +84,12 @@ def register(sub):
     p.set_defaults(func=_main)
 
 
+def _fill(text, width=92):
+    """Wrap a note without parting a number from its unit ("77 %" stays on one line)."""
+    glued = re.sub(r"(\d) (%|mm|ms|m|s|degC|°C)(?=\W|$)", "\\1\u00a0\\2", text)
+    return textwrap.fill(glued, width).replace("\u00a0", " ")
+
+
 def _main(args) -> int:
     from .run import run
     from .plots import plot_diagnostics
@@ -94,7 +101,7 @@ def _main(args) -> int:
     track = os.path.join(args.out, args.log + ".track.h5")
     res = run(log, out=track, smooth=True)
     print(res.summary())
-    print("\n" + textwrap.fill(DEMO_NOTES[args.log], 92))
+    print("\n" + _fill(DEMO_NOTES[args.log]))
     fig = os.path.join(args.out, args.log + ".png")
     res.plot(fig)
     diag = os.path.join(args.out, args.log + ".diagnostics.png")
