@@ -403,7 +403,9 @@ class Rig:
             if isinstance(v, dict):
                 base = {k: (list(x) if isinstance(x, tuple) else x)
                         for k, x in asdict(d[key]).items()}
-                changes[key] = _take(cls, {**base, **v}, "<replace>", key, None)
+                # no file: a replaced rig was not read from one (a placeholder here
+                # would be printed as if it were a file name)
+                changes[key] = _take(cls, {**base, **v}, "", key, None)
         d.update(changes)
         sensors = dict(d["sensors"])
         for k, sen in sensors.items():
@@ -428,7 +430,7 @@ class Rig:
         d["directions"] = dirs
         new = Rig(**d)
         # the same checks as a rig file: through the dictionary it would be written as
-        Rig.from_dict(new.to_dict(), where="<replace>")
+        Rig.from_dict(new.to_dict(), where="")
         return new
 
     # --- queries -----------------------------------------------------------------

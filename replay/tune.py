@@ -6,12 +6,19 @@ Two objectives:
   across one or many logs (the prediction-error decomposition, Schweppe 1965). Needs no
   ground truth.
 * ``truth`` — when the logs carry ground truth: each sensor's noise is fitted directly to
-  its residuals against truth (maximum likelihood of the sensor's sigma model, with
-  outliers trimmed), then the process noise by the innovations likelihood with those
-  sensor noises held.
+  its residuals against truth (maximum likelihood of the sensor's sigma model) over the
+  readings the filter fused, re-selected with each fit, with a robust start and outliers
+  trimmed; then, with those held, the process noise (and any latency) by the track's log
+  score against truth (a proper scoring rule, floored for re-acquisitions).
+
+Every likelihood evaluation decodes and fuses the logs with a rig that carries the
+parameter values, through `fusion.Fuser.process` as `rangefuse replay` does, so the
+figures the tuner reports for the rig it writes are the replay's figures for it.
 
 Approximate 95 % intervals come from the curvature of the log-likelihood at the optimum
-(observed information, in log-parameters).
+(observed information, in log-parameters); a parameter at a bound of its search range
+has none (it is reported as at its bound), and an interval that reaches a bound is
+reported one-sided.
 
 References
 ----------
@@ -26,6 +33,7 @@ import argparse
 import dataclasses
 import math
 import os
+import sys
 import time
 from dataclasses import dataclass, field
 
@@ -38,10 +46,12 @@ from fusion.errors import InputError
 from fusion.fuser import Fuser
 from fusion.rig import Rig
 
+from . import _window_stats as W
 from . import metrics as M
 from ._io import atomic_output, refuse_overwrite
 from .logfile import open_log
-from .run import _clean_truth, _rig_for, _truth_interp, load_rig
+from .run import (_DirStats, _SensorStats, _accumulate, _clean_truth, _rig_for, _truth_interp,
+                  load_rig)
 from fusion.estimators.smoother import rts_smooth
 
 __all__ = ["tune", "TuneResult", "Parameter", "register"]
@@ -49,25 +59,47 @@ __all__ = ["tune", "TuneResult", "Parameter", "register"]
 
 @dataclass(frozen=True)
 class Parameter:
-    """One tunable value: where it lives in the rig and its current value."""
+    """One tunable value: where it lives in the rig, its current value and the range the
+    search keeps it in (every value in ``[lower, upper]`` is one the rig accepts)."""
 
     name: str            # e.g. "estimator.accel_psd", "sensor.echo_front.sigma_m"
     value: float
     lower: float = 1e-9
     upper: float = 1e3
 
+    @property
+    def is_log(self) -> bool:
+        """Searched in log space (scales); latencies, which may be 0, in seconds."""
+        return not self.name.endswith("latency_s")
+
+
+# How an interval came out (`TuneResult.ci_status`), and the words the summary uses.
+CI_TWO_SIDED = "two-sided"
+CI_BELOW = "one-sided below"     # the lower end reaches the search bound
+CI_ABOVE = "one-sided above"     # the upper end reaches the search bound
+CI_UNBOUNDED = "unbounded"       # both ends reach the bounds: the logs do not pin it
+CI_AT_LOWER = "at lower bound"
+CI_AT_UPPER = "at upper bound"
+CI_NOT_MAXIMUM = "not a maximum"
+CI_SKIPPED = "skipped"
+CI_FITTED_TO_TRUTH = "fitted to truth"
+
 
 @dataclass
 class TuneResult:
-    """Tuned parameters with intervals, and the fit before and after."""
+    """Tuned parameters with intervals, and the fit before and after.
+
+    The NIS, the fused readings' log-likelihood and the figures against truth are those
+    `rangefuse replay` reports for the starting rig (before) and the written rig (after).
+    """
 
     objective: str
     params: list                  # list of Parameter (tuned values)
     initial: list                 # list of Parameter (values before)
-    ci95: dict                    # name -> (low, high)
+    ci95: dict                    # name -> (low, high) from the curvature (read with ci_status)
     loglik_before: float
     loglik_after: float
-    nis_before: tuple             # (mean, n, (lo, hi))
+    nis_before: tuple             # (mean, n, (lo, hi)), over every direction
     nis_after: tuple
     rig: Rig
     history: list = field(default_factory=list)   # improvements: iteration, loglik, params
@@ -80,6 +112,20 @@ class TuneResult:
     # the innovations log-likelihood of fused readings only, as `rangefuse replay` sums it
     loglik_fused_before: float = math.nan
     loglik_fused_after: float = math.nan
+    # name -> one of the CI_* words: how its interval came out (or why there is none)
+    ci_status: dict = field(default_factory=dict)
+    # direction -> replay's "all zones" row against truth (n, rmse_m, bias_m, worst_m,
+    # nees, cover2) before and after; empty without truth
+    truth_before: dict = field(default_factory=dict)
+    truth_after: dict = field(default_factory=dict)
+    # direction -> (mean, n, (lo, hi)): replay's per-direction NIS before and after
+    nis_dirs_before: dict = field(default_factory=dict)
+    nis_dirs_after: dict = field(default_factory=dict)
+    # set when the written rig is clearly worse against truth than the starting one
+    worse_against_truth: str = ""
+    # the track's log score against truth (`_truth_score`; NaN without truth)
+    truth_score_before: float = math.nan
+    truth_score_after: float = math.nan
 
     @property
     def best_iteration(self) -> int:
@@ -87,37 +133,81 @@ class TuneResult:
         convergence figure numbers it."""
         return max(self.history, key=lambda h: h["loglik"])["iteration"] if self.history else 0
 
+    def interval_text(self, name) -> str:
+        """The 95 % interval of parameter `name` in words (see `ci_status`)."""
+        status = self.ci_status.get(name, CI_NOT_MAXIMUM)
+        lo, hi = self.ci95.get(name, (math.nan, math.nan))
+        if status == CI_TWO_SIDED:
+            return f"[{lo:.4g}, {hi:.4g}]"
+        if status == CI_BELOW:
+            return f"one-sided: below {hi:.4g}"
+        if status == CI_ABOVE:
+            return f"one-sided: above {lo:.4g}"
+        return {CI_UNBOUNDED: "not pinned down by the logs",
+                CI_AT_LOWER: "at its lower bound",
+                CI_AT_UPPER: "at its upper bound",
+                CI_SKIPPED: "skipped (--no-intervals)",
+                CI_FITTED_TO_TRUTH: "fitted to truth (none)",
+                }.get(status, "not a maximum here")
+
     def summary(self) -> str:
         parts = " + ".join(f"{n} {what}" for n, what in self.eval_parts if n)
         head, *notes = self.message.split("; ")
-        L = [f"tuning by {self.objective} over {self.n_readings} readings in "
-             f"{self.seconds:.1f} s: {head}",
-             f"  {self.n_evals} likelihood evaluations" + (f" = {parts}" if parts else ""),
-             f"  tuned values found at iteration {self.best_iteration} (the convergence "
-             "figure's iterations count these evaluations)"]
+        L = []
+        if self.worse_against_truth:
+            L += [f"WARNING: {self.worse_against_truth}", ""]
+        L += [f"tuning by {self.objective} over {self.n_readings} readings in "
+              f"{self.seconds:.1f} s: {head}",
+              f"  {self.n_evals} likelihood evaluations" + (f" = {parts}" if parts else ""),
+              f"  tuned values found at iteration {self.best_iteration} (the convergence "
+              "figure's iterations count these evaluations)"]
         L += [f"  note: {n}" for n in notes]
-        L += ["", f"  {'parameter':<34}{'before':>12}{'tuned':>12}{'95% interval':>26}"]
+        L += ["", f"  {'parameter':<34}{'before':>12}{'tuned':>12}   {'95% interval'}"]
         for p0, p in zip(self.initial, self.params):
-            lo, hi = self.ci95.get(p.name, (math.nan, math.nan))
-            # no interval where the likelihood does not curve down along the parameter
-            iv = f"[{lo:.4g}, {hi:.4g}]" if np.isfinite(lo) and np.isfinite(hi) else \
-                "not a maximum here"
-            L.append(f"  {p.name:<34}{p0.value:>12.4g}{p.value:>12.4g}{iv:>26}")
+            L.append(f"  {p.name:<34}{p0.value:>12.4g}{p.value:>12.4g}   "
+                     f"{self.interval_text(p.name)}")
         L.append("")
+        truth = self.objective == "truth"
         L.append(f"  {'log-likelihood (nats)':<34}{'before':>12}{'tuned':>12}")
-        L.append(f"  {'tuning objective (*)':<34}{self.loglik_before:>12.1f}{self.loglik_after:>12.1f}")
+        L.append(f"  {'innovations objective (*)' if truth else 'tuning objective (*)':<34}"
+                 f"{self.loglik_before:>12.1f}{self.loglik_after:>12.1f}")
         L.append(f"  {'fused readings only (**)':<34}{self.loglik_fused_before:>12.1f}"
                  f"{self.loglik_fused_after:>12.1f}")
-        L.append("  (*)  what the tuner maximises: the fused readings' innovations log-likelihood "
-                 "plus,")
+        if math.isfinite(self.truth_score_before):
+            L.append(f"  {'log score against truth (***)':<34}{self.truth_score_before:>12.1f}"
+                     f"{self.truth_score_after:>12.1f}")
+        L.append("  (*)  " + ("the innovations objective" if truth else "what the tuner "
+                 "maximises") + ": the fused readings' innovations log-likelihood plus,")
         L.append("       for each gated or crosstalk reading, the outlier term log(outlier "
                  "density), so")
         L.append("       no parameter change can score by pushing readings out of the gate")
         L.append("  (**) the \"innovations log-likelihood\" of `rangefuse replay` (here summed "
                  "over directions)")
+        if math.isfinite(self.truth_score_before):
+            L.append("  (***) log density of the true range under the track's prediction at "
+                     "each reading,")
+            L.append("       floored by the outlier density" + (": what the truth objective "
+                     "maximises for the process noise" if truth else ""))
         for label, (mean, n, (lo, hi)) in (("before", self.nis_before), ("after", self.nis_after)):
             L.append(f"  time-averaged NIS {label}: {mean:.3f} over {n} readings, 95% bounds "
                      f"[{lo:.3f}, {hi:.3f}]: {M.consistency_verdict(mean, n)}")
+        if len(self.nis_dirs_after) > 1:
+            # replay reports the NIS by direction: the same figures, direction by direction
+            for d, (mean, n, _) in self.nis_dirs_after.items():
+                m0, n0, _ = self.nis_dirs_before.get(d, (math.nan, 0, None))
+                L.append(f"    direction {d}: {m0:.3f} ({M.consistency_verdict(m0, n0)}) -> "
+                         f"{mean:.3f} ({M.consistency_verdict(mean, n)})")
+        if self.truth_after:
+            L.append("")
+            L.append("  against truth (replay's filtered figures, all zones):")
+            L.append(f"    {'direction':<12}{'RMSE mm':>18}{'NEES':>20}{'2σ cover':>20}")
+            for d, a in self.truth_after.items():
+                b = self.truth_before.get(d)
+                if a is None or b is None:
+                    continue
+                L.append(f"    {d:<12}{1e3 * b['rmse_m']:>8.1f} -> {1e3 * a['rmse_m']:<6.1f}"
+                         f"{b['nees']:>10.3g} -> {a['nees']:<7.3g}"
+                         f"{100 * b['cover2']:>9.1f}% -> {100 * a['cover2']:.1f}%")
         return "\n".join(L)
 
     def plot(self, path=None):
@@ -132,7 +222,14 @@ class TuneResult:
 
 
 # --- parameters in a rig ------------------------------------------------------------------
+# The longest latency searched, seconds: far beyond any ranger's (a few ms to tens of ms).
+_MAX_LATENCY_S = 0.2
+
+
 def default_parameters(rig: Rig, latency=False) -> list:
+    """The tunable parameters of `rig`: process noise and each sensor's noise terms (and,
+    with `latency`, each sensor's latency), each with a search range inside the values
+    the rig accepts (a latency is >= 0: `fusion.rig` refuses a negative one)."""
     ps = [Parameter("estimator.accel_psd", rig.estimator.accel_psd, 1e-6, 1e3)]
     for name, s in rig.sensors.items():
         if s.kind == "triangulation":
@@ -141,7 +238,8 @@ def default_parameters(rig: Rig, latency=False) -> list:
             ps.append(Parameter(f"sensor.{name}.sigma_m", s.sigma_m, 1e-5, 1.0))
             ps.append(Parameter(f"sensor.{name}.sigma_frac", max(s.sigma_frac, 1e-5), 1e-6, 0.5))
         if latency:
-            ps.append(Parameter(f"sensor.{name}.latency_s", s.latency_s, -0.2, 0.2))
+            ps.append(Parameter(f"sensor.{name}.latency_s", s.latency_s, 0.0,
+                                max(_MAX_LATENCY_S, s.latency_s)))
     return ps
 
 
@@ -164,89 +262,61 @@ def apply(rig: Rig, params) -> Rig:
 
 # --- the likelihood machine ---------------------------------------------------------------
 class _Problem:
-    """Logs decoded once; the estimator re-run for each parameter vector."""
+    """Logs read once; each evaluation decodes and fuses them with a rig carrying the
+    parameter values.
+
+    The evaluation is `fusion.Fuser.process` on a fresh fuser of that rig, the code path
+    of `rangefuse replay`: every term of a reading's sigma (an IR unit's ``gain_sigma``,
+    an echo unit's air-temperature and quantisation terms), the stuck-output limits that
+    follow from the noise and the latency shift all come from the sensors' own decoders,
+    so the tuner cannot score a rig differently from the replay of the rig it writes.
+    Decoding costs about as much as fusing (a few ms per 20 000 readings).
+
+    ``preps`` keeps each log prepared with the starting rig: the sensor-noise fits
+    (`_fit_sensor_noise`) split each reading's sigma into the tuned term and the rest
+    from it.
+    """
 
     def __init__(self, logs, rig, params, latency):
         self.rig = rig
         self.params = params
         self.latency = latency
+        self.inputs = []      # per log: (readings, environment), as Fuser.process takes them
         self.preps = []
         self.truths = []
         self.n = 0
-        fuser = Fuser(rig)
-        self.sensor_names = fuser.sensor_names
+        self.sensor_names = tuple(rig.sensors)
         for path in logs:
             with open_log(path) as log:
                 _rig_for(log, rig, path)
-                f = Fuser(rig)
-                prep = f.prepare(log.readings(), log.environment_for(rig))
-                if prep is None:
-                    continue
-                self.preps.append(prep)
-                self.truths.append({d: _clean_truth(log.truth(d)) for d in rig.directions})
-                self.n += len(prep["sensor"])
+                readings = log.readings()
+                env = log.environment_for(rig)
+                truth = {d: _clean_truth(log.truth(d)) for d in rig.directions}
+            prep = Fuser(rig).prepare(readings, env)
+            if prep is None:
+                continue
+            self.inputs.append((readings, env))
+            self.preps.append(prep)
+            self.truths.append(truth)
+            self.n += len(prep["sensor"])
         if not self.preps:
             raise InputError("the logs hold no readings to tune on", field="/sensors")
-        self.base = {p.name: p.value for p in params}
-        self._split_sigma()
 
-    def _split_sigma(self):
-        """Per prepared reading, the part of sigma^2 that the tuned terms do not set."""
-        self.other_var = []
-        for prep in self.preps:
-            ov = np.zeros_like(prep["sg"])
-            for si, name in enumerate(self.sensor_names):
-                s = self.rig.sensors[name]
-                m = prep["sensor"] == si
-                if s.kind == "echo":
-                    r = prep["raw_m"][m]
-                    tuned = s.sigma_m ** 2 + (s.sigma_frac * r) ** 2
-                    ov[m, 0] = np.maximum(prep["sg"][m, 0] ** 2 - tuned, 0.0)
-            self.other_var.append(ov)
-
-    def sigmas(self, values, k):
-        prep = self.preps[k]
-        sg = prep["sg"].copy()
-        for si, name in enumerate(self.sensor_names):
-            s = self.rig.sensors[name]
-            m = prep["sensor"] == si
-            if s.kind == "triangulation":
-                key = f"sensor.{name}.volts_sigma"
-                if key in values:
-                    from fusion.sensors.adc import adc_quantisation_sigma_v
-                    q = adc_quantisation_sigma_v(s.adc_bits, s.adc_vref) if s.output == "counts" else 0.0
-                    f = math.hypot(values[key], q) / math.hypot(s.volts_sigma, q)
-                    sg[m] *= f
-            else:
-                a = values.get(f"sensor.{name}.sigma_m", s.sigma_m)
-                b = values.get(f"sensor.{name}.sigma_frac", s.sigma_frac)
-                r = prep["raw_m"][m]
-                sg[m, 0] = np.sqrt(self.other_var[k][m, 0] + a * a + (b * r) ** 2)
-        return sg
+    def rig_for(self, values) -> Rig:
+        """The starting rig with parameter values (name -> value) put in place."""
+        return apply(self.rig, [Parameter(k, float(v)) for k, v in values.items()])
 
     def run(self, values):
-        """Runs with parameter values (dict); returns total loglik, NIS stats, batches."""
-        est = dataclasses.replace(self.rig.estimator,
-                                  accel_psd=values.get("estimator.accel_psd",
-                                                       self.rig.estimator.accel_psd))
-        rig = self.rig.replace(estimator=est)
+        """Runs with parameter values (dict); returns total loglik, NIS stats, batches.
+
+        Each batch is aligned with ``preps`` (same readings in the same order)."""
+        rig = self.rig_for(values)
         total = 0.0
         self.last_fused = 0.0
         nis_sum, nis_n = 0.0, 0
         batches = []
-        for k, prep in enumerate(self.preps):
-            f = Fuser(rig)
-            p2 = dict(prep)
-            p2["sg"] = self.sigmas(values, k)
-            if self.latency:
-                t = prep["t_meas"].copy()
-                for si, name in enumerate(self.sensor_names):
-                    key = f"sensor.{name}.latency_s"
-                    if key in values:
-                        m = prep["sensor"] == si
-                        t[m] = t[m] + self.rig.sensors[name].latency_s - values[key]
-                p2["t_meas"] = t
-            b = f.run_prepared(p2)
+        for readings, env in self.inputs:
+            b = Fuser(rig).process(readings, env)
             acc = b.code < D.FIRST_REJECT
             gated = (b.code == D.GATED) | (b.code == D.CROSSTALK)
             # The objective keeps gated (and crosstalk) readings with their outlier-density
@@ -259,6 +329,112 @@ class _Problem:
             nis_n += int(fin.sum())
             batches.append(b)
         return total, (nis_sum / max(nis_n, 1), nis_n, M.nis_bounds(nis_n)), batches
+
+
+class _NoTrack:
+    """Stands in for replay's track-file appender: the tuner keeps only the statistics."""
+
+    def append(self, **cols):
+        pass
+
+
+def _replay_figures(rig, truths, batches) -> dict:
+    """The figures `rangefuse replay` reports for `rig`, from the batches of its run
+    (one per log, as `_Problem.run` returns them), folded by replay's own code
+    (`replay.run._accumulate`): NIS and fused readings' log-likelihood by direction and
+    over all, and each direction's "all zones" row against truth (None without truth)."""
+    names, dirs = tuple(rig.sensors), tuple(rig.directions)
+    sstats = {n: _SensorStats() for n in names}
+    dstats = {d: _DirStats() for d in dirs}
+    sink = {d: _NoTrack() for d in dirs}
+    edges = {d: M.zone_edges(rig, d) for d in dirs}
+    has_truth = {d: False for d in dirs}
+    for b, truth in zip(batches, truths):
+        if len(b) == 0:
+            continue
+        tr = {d: truth.get(d) for d in dirs}
+        for d in dirs:
+            has_truth[d] |= tr[d] is not None
+        ws = W.WindowStats(rig, names, dirs, tr, edges, _truth_interp)
+        _accumulate(b.in_time_order(), names, dirs, tr, sstats, dstats, sink, ws)
+    nis_n = sum(ds.nis_n for ds in dstats.values())
+    nis_mean = sum(ds.nis_sum for ds in dstats.values()) / nis_n if nis_n else math.nan
+    by_dir = {d: ((ds.nis_sum / ds.nis_n if ds.nis_n else math.nan), ds.nis_n,
+                  M.nis_bounds(ds.nis_n)) for d, ds in dstats.items()}
+    truth_rows = {d: ds.err.table()["all"] for d, ds in dstats.items() if has_truth[d]}
+    return {"nis": (nis_mean, nis_n, M.nis_bounds(nis_n)), "nis_dirs": by_dir,
+            "loglik_fused": sum(ds.loglik for ds in dstats.values()), "truth": truth_rows}
+
+
+# A tuned rig "clearly worse" against truth than the starting one: the RMSE of a
+# direction up by more than 10 %, or its 2-sigma cover down by more than 5 points to
+# below 90 % (design figures, not published values: well outside the scatter of these
+# figures between seeds of the demo scenarios, and inside what a user would call worse).
+_WORSE_RMSE = 1.10
+_WORSE_COVER = 0.05
+
+
+def _worse_against_truth(before, after) -> str:
+    """Words saying how the tuned rig is clearly worse against truth, or ''."""
+    bad = []
+    for d, a in after.items():
+        b = before.get(d)
+        if a is None or b is None:
+            continue
+        if a["rmse_m"] > _WORSE_RMSE * b["rmse_m"] + 1e-6:
+            bad.append(f"direction {d}: RMSE {1e3 * b['rmse_m']:.1f} -> "
+                       f"{1e3 * a['rmse_m']:.1f} mm")
+        if a["cover2"] < b["cover2"] - _WORSE_COVER and a["cover2"] < 0.90:
+            bad.append(f"direction {d}: 2-sigma cover {100 * b['cover2']:.1f} -> "
+                       f"{100 * a['cover2']:.1f} %")
+    if not bad:
+        return ""
+    return ("the tuned rig is clearly worse against the logs' truth than the starting one ("
+            + "; ".join(bad) + "); check it with `rangefuse replay LOG --rig TUNED.toml` "
+            "before using it")
+
+
+def _truth_score(rig, truths, batches) -> float:
+    """The track's log score against truth: at every reading of a direction with truth,
+    the log density of the true range under the track's prediction to the reading's time
+    (``N(r_pred, sigma_pred^2)`` as `rangefuse replay` scores it, `metrics.predict_range`),
+    floored by the rig's outlier density.
+
+    The log score is a proper scoring rule (Gneiting & Raftery 2007): it is best for the
+    process noise whose predicted sigma matches the errors the track makes, rewarding a
+    small error and an honest sigma at once (unlike the RMSE, which a sluggish track can
+    win with a sigma that no longer covers). The floor, ``log(pdf + outlier_density)``,
+    is the innovations objective's treatment of a gated reading: while something steps
+    into the beam and the track is re-acquiring, its metres of error score a constant and
+    cannot drag the process noise. Consecutive errors are correlated, so this is not a
+    likelihood whose curvature gives an interval.
+
+    References
+    ----------
+    T. Gneiting, A. E. Raftery, "Strictly proper scoring rules, prediction, and
+    estimation", J. American Statistical Association 102(477), 359-378 (2007).
+    """
+    lam = rig.estimator.outlier_density
+    q = rig.estimator.accel_psd
+    total = 0.0
+    for b, truth in zip(batches, truths):
+        for di, d in enumerate(rig.directions):
+            tr = truth.get(d)
+            sel = b.direction == di
+            if tr is None or not sel.any():
+                continue
+            tm, st, ts = b.t_meas_s[sel], b.state[sel], b.t_state_s[sel]
+            seen = np.isfinite(tm) & np.isfinite(st[:, 0])
+            # ahead of its state by max(t_meas - t_state, 0), as replay predicts it
+            dt = np.maximum(np.where(seen, tm - ts, 0.0), 0.0)
+            with np.errstate(invalid="ignore"):
+                r, sd = M.predict_range(st[:, 0], st[:, 1], st[:, 2], st[:, 3], st[:, 4], dt, q)
+                e = r - _truth_interp(tr, tm)
+                ok = seen & np.isfinite(e) & np.isfinite(sd) & (sd > 0)
+            e, sd = e[ok], sd[ok]
+            pdf = np.exp(-0.5 * (e / sd) ** 2) / (math.sqrt(2 * math.pi) * sd)
+            total += float(np.sum(np.log(pdf + lam)))
+    return total
 
 
 def _truth_refs(problem):
@@ -330,16 +506,44 @@ def _smoothed_refs(problem, batches, q):
     return refs, (num / den if den else q)
 
 
-def _fit_sensor_noise(problem: _Problem, refs) -> dict:
+def _fit_sensor_noise(problem: _Problem, refs, use=None) -> dict:
     """Each sensor's sigma model fitted by maximum likelihood to its residuals against a
-    reference range (truth, or the smoothed track with its variance), trimmed at 4 sigma."""
+    reference range (truth, or the smoothed track with its variance).
+
+    Parameters
+    ----------
+    problem : _Problem
+    refs : list of (ref, extra)
+        Per log, the reference range and its variance at every prepared reading (NaN
+        where there is none).
+    use : list of bool arrays, optional
+        Per log, the readings to fit to (default: every reading the decoder accepted).
+        The truth objective passes the readings the filter fused: a ghost, a crosstalk
+        echo or a clutter return is not the target, and its residual against the
+        target's truth says nothing about the sensor's noise.
+
+    Each reading's variance is split, from the starting rig's decode, into the tuned term
+    and the rest (an echo unit's quantisation and air-temperature terms; an IR unit's
+    quantisation and ``gain_sigma`` terms, through the curve's slope), so the fit moves
+    only what the parameter moves in the decoder. Outliers are trimmed at 4 sigma,
+    starting from a robust scale of the residuals standardised by the starting rig's
+    sigma (1.4826 times their median absolute value, the normal-consistent MAD; Hampel
+    1974), so a few far-off readings cannot inflate the first fit and keep themselves in.
+
+    References
+    ----------
+    F. R. Hampel, "The influence curve and its role in robust estimation", J. American
+    Statistical Association 69(346), 383-393 (1974): the median absolute deviation as a
+    scale (from memory).
+    """
     out = {}
     for si, name in enumerate(problem.sensor_names):
         s = problem.rig.sensors[name]
-        res, rr, base, ex = [], [], [], []
+        res, rr, base, ex, volts = [], [], [], [], []
         for k, prep in enumerate(problem.preps):
             ref_all, extra_all = refs[k]
-            m = (prep["sensor"] == si) & (prep["code"] == D.ACCEPTED) & np.isfinite(ref_all)
+            sel = use[k] if use is not None else prep["code"] == D.ACCEPTED
+            m = (prep["sensor"] == si) & sel & np.isfinite(ref_all)
             if not m.any():
                 continue
             tr = ref_all[m]
@@ -347,29 +551,47 @@ def _fit_sensor_noise(problem: _Problem, refs) -> dict:
             # the candidate on the reference's side of the curve
             col = np.where(np.isfinite(z[:, 1]) & (np.abs(z[:, 1] - tr) < np.abs(z[:, 0] - tr)), 1, 0)
             zz = z[np.arange(len(z)), col]
-            ok = np.isfinite(zz)
+            sb = prep["sg"][m][np.arange(len(z)), col]
+            ok = np.isfinite(zz) & np.isfinite(sb) & (sb > 0)
             res.append((zz - tr)[ok])
-            rr.append(prep["raw_m"][m][ok] if s.kind == "echo" else zz[ok])
-            base.append(prep["sg"][m][np.arange(len(z)), col][ok])
+            # the range the decoder's sigma_frac multiplies: the unit's own, before the
+            # mount offset (compensated for the air, as the decoder computes it)
+            rr.append(zz[ok] - s.offset_m)
+            base.append(sb[ok])
             ex.append(extra_all[m][ok])
+            if s.kind == "triangulation":
+                v = s.to_volts(prep["rawv"][m][ok])
+                volts.append(np.where(np.isfinite(v), v, 0.0))
         if not res:
             continue
         e = np.concatenate(res)
+        if e.size < 20:
+            continue
         r = np.concatenate(rr)
         sb = np.concatenate(base)
         e2 = e * e + np.concatenate(ex)   # E[(z - x)^2]
-        if e.size < 20:
+        u = np.abs(e) / sb
+        scale = 1.4826 * float(np.median(u))
+        keep = u <= 4 * scale if scale > 0 else np.ones(e.size, bool)
+        if keep.sum() < 20:
             continue
-        keep = np.ones(e.size, bool)
         if s.kind == "triangulation":
-            # sigma = f * base: closed form
-            for _ in range(5):
-                f = math.sqrt(np.mean(e2[keep] / sb[keep] ** 2))
-                keep = np.abs(e) <= 4 * f * sb
+            # sigma^2 = (volts_sigma^2 + q^2 + (gain_sigma V)^2) / slope^2 (the decoder's
+            # model): per reading a (1 / slope^2) and the part volts_sigma does not set
             from fusion.sensors.adc import adc_quantisation_sigma_v
             q = adc_quantisation_sigma_v(s.adc_bits, s.adc_vref) if s.output == "counts" else 0.0
-            tot = f * math.hypot(s.volts_sigma, q)
-            out[f"sensor.{name}.volts_sigma"] = math.sqrt(max(tot * tot - q * q, 1e-12))
+            fixed = q * q + (s.gain_sigma * np.concatenate(volts)) ** 2
+            a = sb ** 2 / (s.volts_sigma ** 2 + fixed)
+            ov = a * fixed
+            t = math.log(s.volts_sigma)
+            for _ in range(4):
+                def nll(t):
+                    v = ov[keep] + a[keep] * math.exp(2 * t)
+                    return 0.5 * np.sum(np.log(v) + e2[keep] / v)
+                t = optimize.minimize_scalar(nll, bounds=(math.log(1e-7), math.log(10.0)),
+                                             method="bounded", options={"xatol": 1e-5}).x
+                keep = np.abs(e) <= 4 * np.sqrt(ov + a * math.exp(2 * t))
+            out[f"sensor.{name}.volts_sigma"] = math.exp(t)
         else:
             ov = np.maximum(sb ** 2 - (s.sigma_m ** 2 + (s.sigma_frac * r) ** 2), 0)
             th = np.array([math.log(s.sigma_m), math.log(max(s.sigma_frac, 1e-5))])
@@ -384,6 +606,43 @@ def _fit_sensor_noise(problem: _Problem, refs) -> dict:
             out[f"sensor.{name}.sigma_m"] = math.exp(th[0])
             out[f"sensor.{name}.sigma_frac"] = math.exp(th[1])
     return out
+
+
+def _within_bounds(values: dict, params) -> dict:
+    """`values` with each parameter's value brought into its search range: a fit may
+    run past it (a noise term the data cannot tell from zero), and the rig written
+    must hold only values the search range allows."""
+    lim = {p.name: (p.lower, p.upper) for p in params}
+    return {k: (min(max(v, lim[k][0]), lim[k][1]) if k in lim else v) for k, v in values.items()}
+
+
+def _fit_to_truth(problem: _Problem, values: dict, params, rounds=4, rtol=0.01):
+    """Sensor noise fitted to truth residuals over the readings the filter fuses.
+
+    Which readings the filter fuses depends on the noise it is given (the gate), so the
+    selection and the fit alternate: run the filter with the current values, fit each
+    sensor to its fused readings' residuals against truth, and repeat until no value
+    moves by more than `rtol` (relative) or after `rounds` rounds.
+
+    Returns ``(fitted values, evaluations)``.
+    """
+    names = {p.name for p in params}
+    refs = _truth_refs(problem)
+    cur = dict(values)
+    fitted = {}
+    n_eval = 0
+    for _ in range(rounds):
+        _, _, batches = problem.run(cur)
+        n_eval += 1
+        use = [b.code < D.FIRST_REJECT for b in batches]
+        new = _within_bounds({k: v for k, v in _fit_sensor_noise(problem, refs, use).items()
+                              if k in names}, params)
+        moved = max((abs(v / cur.get(k, v) - 1) for k, v in new.items()), default=0.0)
+        fitted = new
+        cur.update(new)
+        if moved <= rtol:
+            break
+    return fitted, n_eval
 
 
 def _em(problem, values, history, max_rounds=8, tol=1e-6):
@@ -421,7 +680,8 @@ def _em(problem, values, history, max_rounds=8, tol=1e-6):
         for _ in range(6):  # EM passes on the sensor noise
             q = values.get(qkey, problem.rig.estimator.accel_psd)
             refs, _ = _smoothed_refs(problem, batches, q)
-            new = {k: v for k, v in _fit_sensor_noise(problem, refs).items() if k in values}
+            new = _within_bounds({k: v for k, v in _fit_sensor_noise(problem, refs).items()
+                                  if k in values}, problem.params)
             if not new:
                 break
             trial = dict(values, **new)
@@ -438,7 +698,8 @@ def _em(problem, values, history, max_rounds=8, tol=1e-6):
             r = optimize.minimize_scalar(neg, bracket=(lq - 1.0, lq), bounds=None,
                                          options={"xtol": 0.02, "maxiter": 30})
             if -r.fun > ll:
-                values = dict(values, **{qkey: math.exp(r.x)})
+                # the line search is unbounded: keep q in its search range
+                values = dict(values, **_within_bounds({qkey: math.exp(r.x)}, problem.params))
                 ll, batches = run(values)
         if ll - ll_round <= tol * abs(ll):
             break
@@ -449,25 +710,58 @@ _POLISH_EVALS = 40  # direct-search evaluations after EM
 
 
 def _hessian(f, x, h=0.05):
+    """Finite-difference Hessian of `f` at `x`: central second differences on the
+    diagonal, forward mixed differences off it; `h` is one step or one per coordinate."""
     n = len(x)
+    h = np.broadcast_to(np.asarray(h, float), (n,))
     H = np.zeros((n, n))
     f0 = f(x)
     fp = np.zeros(n)
     fm = np.zeros(n)
     for i in range(n):
         e = np.zeros(n)
-        e[i] = h
+        e[i] = h[i]
         fp[i] = f(x + e)
         fm[i] = f(x - e)
-        H[i, i] = (fp[i] - 2 * f0 + fm[i]) / h ** 2
+        H[i, i] = (fp[i] - 2 * f0 + fm[i]) / h[i] ** 2
     for i in range(n):
         for j in range(i + 1, n):
             ei = np.zeros(n)
             ej = np.zeros(n)
-            ei[i] = h
-            ej[j] = h
-            H[i, j] = H[j, i] = (f(x + ei + ej) - fp[i] - fp[j] + f0) / h ** 2
+            ei[i] = h[i]
+            ej[j] = h[j]
+            H[i, j] = H[j, i] = (f(x + ei + ej) - fp[i] - fp[j] + f0) / (h[i] * h[j])
     return H
+
+
+# Curvature steps: 5 % in a log-parameter; 1 ms in a latency (readings come every 10 to
+# 50 ms: a step of a few per cent of that moves the likelihood measurably, and stays
+# inside the 0 bound of a latency of a few ms).
+_STEP_LOG = 0.05
+_STEP_LATENCY_S = 1e-3
+
+
+def _intervals(x, sd, free, bounds, at_bound):
+    """95 % intervals ``x +- 1.96 sd`` in the search coordinates, mapped back
+    (log-parameters through exp, which gives inf rather than an overflow for a nearly flat
+    direction), and how each came out against the search range; returns
+    ``(ci, status)``. A parameter at a bound is reported as such whatever its curvature
+    there (the curvature of a boundary point is not that of a maximum)."""
+    ci, status = {}, {}
+    for p, xi, sdi, (lo_b, hi_b), side in zip(free, x, sd, bounds, at_bound):
+        if np.isfinite(sdi):
+            lo, hi = xi - 1.96 * sdi, xi + 1.96 * sdi
+            with np.errstate(over="ignore"):
+                ci[p.name] = ((float(np.exp(lo)), float(np.exp(hi))) if p.is_log
+                              else (float(lo), float(hi)))
+            low_open, high_open = lo <= lo_b, hi >= hi_b
+            status[p.name] = (CI_UNBOUNDED if low_open and high_open else CI_BELOW if low_open
+                              else CI_ABOVE if high_open else CI_TWO_SIDED)
+        else:
+            status[p.name] = CI_NOT_MAXIMUM
+        if side:
+            status[p.name] = side
+    return ci, status
 
 
 def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_evals=600,
@@ -481,11 +775,12 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         Starting rig (default: the one embedded in the first log).
     objective : {"auto", "innovations", "truth"}
         "auto" is "innovations"; "truth" fits each sensor's noise to its residuals
-        against the logs' ground truth and only the process noise by likelihood.
+        against the logs' ground truth, over the readings the filter fuses, then the
+        process noise to the track's log score against truth (`_truth_score`).
     params : list of str, optional
         Parameter names to tune (default: process noise and every sensor's noise terms).
     latency : bool
-        Also tune each sensor's latency (innovations objective).
+        Also tune each sensor's latency (innovations objective), searched from 0 s.
     max_evals : int
         Cap on likelihood evaluations for the optimiser.
     intervals : bool
@@ -497,6 +792,10 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
     Returns
     -------
     TuneResult
+        Its before and after figures (NIS, fused log-likelihood, against truth) are
+        those `rangefuse replay` reports for the starting and the tuned rig; when the
+        logs carry truth and the tuned rig is clearly worse against it, its
+        ``worse_against_truth`` says so (and the summary leads with a warning).
     """
     t0 = time.perf_counter()
     paths = [os.fspath(logs)] if isinstance(logs, (str, os.PathLike)) else [os.fspath(p) for p in logs]
@@ -522,13 +821,27 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         raise InputError("objective 'truth' needs ground truth in every log (/truth)",
                          file=paths[0], field="/truth")
     values0 = {p.name: p.value for p in allp}
-    ll0, nis0, _ = prob.run(values0)
+    ll0, _, batches0 = prob.run(values0)
     llf0 = prob.last_fused
-    history = [{"iteration": 0, "loglik": ll0, "params": dict(values0)}]
+    fig0 = _replay_figures(rig, prob.truths, batches0)
+    ts0 = _truth_score(rig, prob.truths, batches0) if has_truth else math.nan
+
+    def score(v):
+        """What the search maximises: the innovations objective, or (objective truth,
+        for what is not fitted to residuals) the track's log score against truth."""
+        ll, _, batches = prob.run(v)
+        if objective == "truth":
+            return _truth_score(prob.rig_for(v), prob.truths, batches)
+        return ll
+
+    history = [{"iteration": 0, "loglik": ts0 if objective == "truth" else ll0,
+                "params": dict(values0)}]
     fixed = {}
+    pre_iters = 0
+    eval_parts = []
     if objective == "truth":
-        fixed = _fit_sensor_noise(prob, _truth_refs(prob))
-        fixed = {k: v for k, v in fixed.items() if k in values0}
+        fixed, pre_iters = _fit_to_truth(prob, values0, allp)
+        eval_parts.append((pre_iters, "to pick the fused readings for the truth fit"))
     em_iters = 0
     if objective == "innovations" and em:
         # Expectation-maximisation (Shumway & Stoffer 1982) climbs the same likelihood in
@@ -536,6 +849,7 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         values_em, em_iters, ll_em = _em(prob, values0, history)
         if ll_em > ll0:
             values0 = {k: (values_em[k] if k in values_em else v) for k, v in values0.items()}
+        eval_parts.append((em_iters, "by EM and the line search"))
     free = [p for p in allp if p.name not in fixed]
     if em_iters and not latency:
         # EM and its line search come close but stop short of the maximum (the gating
@@ -545,25 +859,31 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         max_evals_direct = min(_POLISH_EVALS, max_evals)
     else:
         max_evals_direct = max_evals
-    lin = [p.name.endswith("latency_s") for p in free]
+    bounds = [(math.log(p.lower), math.log(p.upper)) if p.is_log else (p.lower, p.upper)
+              for p in free]
 
     def to_values(x):
         v = dict(values0)
         v.update(fixed)
-        for p, xi, is_lin in zip(free, x, lin):
-            v[p.name] = float(xi) if is_lin else float(math.exp(xi))
+        for p, xi, (lo, hi) in zip(free, x, bounds):
+            if p.is_log:
+                v[p.name] = math.exp(xi)  # any positive value is one the rig accepts
+            else:
+                # a latency's range is the rig's own (it refuses a negative one): kept in
+                # it whatever a search step asks for
+                v[p.name] = min(max(float(xi), lo), hi)
         return v
 
     cache = {}
     best = [max(h["loglik"] for h in history)]
-    n_evals = [em_iters]
+    n_evals = [pre_iters + em_iters]
     probing = [False]          # True while the curvature is measured around the optimum
     best_probe = [-math.inf]
 
     def nll(x):
         key = tuple(np.round(x, 10))
         if key not in cache:
-            ll, _, _ = prob.run(to_values(x))
+            ll = score(to_values(x))
             cache[key] = -ll
             n_evals[0] += 1
             if probing[0]:
@@ -576,19 +896,18 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
                 history.append({"iteration": n_evals[0], "loglik": ll, "params": to_values(x)})
         return cache[key]
 
-    x0 = np.array([values0[p.name] if is_lin else math.log(max(values0[p.name], p.lower))
-                   for p, is_lin in zip(free, lin)])
-    bounds = [(p.lower, p.upper) if is_lin else (math.log(p.lower), math.log(p.upper))
-              for p, is_lin in zip(free, lin)]
+    x0 = np.array([min(max(math.log(max(values0[p.name], p.lower)) if p.is_log
+                           else values0[p.name], lo), hi)
+                   for p, (lo, hi) in zip(free, bounds)])
     message = "nothing to optimise"
     x = x0
-    eval_parts = [(em_iters, "by EM and the line search")]
     if em_iters and not max_evals_direct:
         message = "converged (EM and line search)"
     elif len(free):
+        n_before = n_evals[0]
         res = optimize.minimize(nll, x0, method="Powell", bounds=bounds,
                                 options={"maxfev": max_evals_direct, "xtol": 1e-2, "ftol": 1e-6})
-        x = res.x
+        x = np.clip(res.x, [b[0] for b in bounds], [b[1] for b in bounds])
         if em_iters:
             message = ("converged (EM and line search, then a direct search)" if res.success
                        else f"EM and line search, then {max_evals_direct} evaluations of direct "
@@ -597,31 +916,56 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
             message = ("converged" if res.success else
                        f"stopped at the cap of {max_evals} evaluations (raise --max-evals)"
                        if res.nfev >= max_evals else str(res.message))
-        eval_parts.append((n_evals[0] - em_iters, "by the direct search"))
+        eval_parts.append((n_evals[0] - n_before, "by the direct search"))
     values = to_values(x)
-    ci = {}
-    if intervals and len(free):
+    ci, ci_status = {}, {}
+    steps = np.array([_STEP_LOG if p.is_log else _STEP_LATENCY_S for p in free])
+    # A parameter less than a curvature step from a bound of its search range is at that
+    # bound: the search stopped at the boundary, where the likelihood need not curve down.
+    at_bound = [CI_AT_LOWER if xi - h < lo else CI_AT_UPPER if xi + h > hi else ""
+                for xi, h, (lo, hi) in zip(x, steps, bounds)]
+    if not intervals:
+        ci_status = {p.name: CI_SKIPPED for p in free}
+    elif objective == "truth":
+        # the truth score sums serially correlated errors: its curvature is no interval
+        ci_status = {p.name: side or CI_FITTED_TO_TRUTH for p, side in zip(free, at_bound)}
+    elif len(free):
         n_before = n_evals[0]
+        # A linear parameter (a latency) at a bound is held while the others' curvature
+        # is measured: a probe past its bound would ask the rig for a value it refuses.
+        # A log-parameter's probes stay positive, so it is probed wherever it is.
+        inner = np.array([not (s and not p.is_log) for p, s in zip(free, at_bound)])
         probing[0] = True
         ll_tuned = -nll(x)
-        H = _hessian(nll, x)
+        sd = np.full(len(free), np.nan)
+        kind = "marginal"
+        if inner.any():
+            xi_ = x[inner]
+
+            def nll_inner(y):
+                z = x.copy()
+                z[inner] = y
+                return nll(z)
+            H = _hessian(nll_inner, xi_, steps[inner])
+            try:
+                np.linalg.cholesky(H)
+                var = np.diag(np.linalg.inv(H))
+            except np.linalg.LinAlgError:
+                # not a clean maximum in every direction (the likelihood has the kinks of
+                # gating): fall back to intervals with the other parameters held
+                kind = "conditional"
+                dg = np.diag(H)
+                var = np.where(dg > 0, 1.0 / np.where(dg > 0, dg, 1.0), np.nan)
+            sd[inner] = np.sqrt(var)
         probing[0] = False
         eval_parts.append((n_evals[0] - n_before, "for the curvature (95% intervals)"))
-        kind = "marginal"
-        try:
-            np.linalg.cholesky(H)
-            var = np.diag(np.linalg.inv(H))
-        except np.linalg.LinAlgError:
-            # not a clean maximum in every direction (the likelihood has the kinks of
-            # gating): fall back to intervals with the other parameters held
-            kind = "conditional"
-            var = np.where(np.diag(H) > 0, 1.0 / np.where(np.diag(H) > 0, np.diag(H), 1.0), np.nan)
-        sd = np.sqrt(var)
-        for p, xi, sdi, is_lin in zip(free, x, sd, lin):
-            ci[p.name] = (xi - 1.96 * sdi, xi + 1.96 * sdi) if is_lin else \
-                (math.exp(xi - 1.96 * sdi), math.exp(xi + 1.96 * sdi))
+        ci, ci_status = _intervals(x, sd, free, bounds, at_bound)
         if kind == "conditional":
             message += "; curvature not positive definite: intervals hold the other parameters fixed"
+        if any(at_bound):
+            message += ("; " + ", ".join(p.name for p, s in zip(free, at_bound) if s)
+                        + " at a bound of the search range: the likelihood has no maximum "
+                        "inside it there, so no interval")
         gain = best_probe[0] - ll_tuned
         if gain > 1.9:  # more than a 95 % interval spans: the search stopped short
             message += (f"; a curvature probe (5 % from the tuned values) scored {gain:.2f} "
@@ -630,24 +974,36 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         elif gain > 0.05:
             message += (f"; a curvature probe scored {gain:.2f} higher: the optimum is flat "
                         "there (a 95% interval spans about 1.9 in log-likelihood)")
-    if fixed and intervals:
-        message += "; sensor noise fitted to truth residuals (intervals only for the rest)"
-    if objective == "innovations" and has_truth:
+    for k in fixed:
+        ci_status[k] = CI_FITTED_TO_TRUTH
+    if objective == "truth":
+        message += ("; sensor noise fitted to the truth residuals of the fused readings, the "
+                    "rest to the track's log score against truth (no curvature intervals)")
+    tuned = [dataclasses.replace(p, value=values[p.name]) for p in allp]
+    rig1 = apply(rig, tuned)
+    ll1, _, batches1 = prob.run(values)
+    llf1 = prob.last_fused
+    fig1 = _replay_figures(rig1, prob.truths, batches1)
+    ts1 = _truth_score(rig1, prob.truths, batches1) if has_truth else math.nan
+    worse = _worse_against_truth(fig0["truth"], fig1["truth"])
+    if worse and objective == "innovations":
+        worse += ("; the innovations likelihood takes the target's motion for white "
+                  "acceleration, and --objective truth fits the rig to the truth instead")
+    if objective == "innovations" and has_truth and not worse:
         # The likelihood fits the innovations; a target whose motion is not white
         # acceleration (stops and steps) can pull the process noise to where truth says
-        # otherwise. The logs can say which.
-        message += ("; the logs carry truth: check the tuned rig against it with `rangefuse "
-                    "replay LOG --rig TUNED.toml` (RMSE, NEES), or fit to it with "
-                    "--objective truth")
-    ll1, nis1, _ = prob.run(values)
-    llf1 = prob.last_fused
-    tuned = [dataclasses.replace(p, value=values[p.name]) for p in allp]
+        # otherwise. The summary shows the replay's figures against truth for both rigs.
+        message += ("; the logs carry truth: the figures against it are below (or fit to it "
+                    "with --objective truth)")
     return TuneResult(objective=objective, params=tuned, initial=allp, ci95=ci,
-                      loglik_before=ll0, loglik_after=ll1, nis_before=nis0, nis_after=nis1,
-                      rig=apply(rig, tuned), history=history,
+                      loglik_before=ll0, loglik_after=ll1, nis_before=fig0["nis"],
+                      nis_after=fig1["nis"], rig=rig1, history=history,
                       seconds=time.perf_counter() - t0, n_readings=prob.n, message=message,
                       n_evals=n_evals[0], eval_parts=eval_parts,
-                      loglik_fused_before=llf0, loglik_fused_after=llf1)
+                      loglik_fused_before=llf0, loglik_fused_after=llf1, ci_status=ci_status,
+                      truth_before=fig0["truth"], truth_after=fig1["truth"],
+                      nis_dirs_before=fig0["nis_dirs"], nis_dirs_after=fig1["nis_dirs"],
+                      worse_against_truth=worse, truth_score_before=ts0, truth_score_after=ts1)
 
 
 # --- command line ---------------------------------------------------------------------------
@@ -668,7 +1024,8 @@ def register(sub):
     p.add_argument("--objective", choices=("auto", "innovations", "truth"), default="auto",
                    help="innovations: maximise the innovations log-likelihood (needs no "
                         "ground truth); truth: fit each sensor's noise to its residuals "
-                        "against the logs' /truth, then the process noise by likelihood "
+                        "against the logs' /truth, then the process noise to the track's "
+                        "log score against it "
                         "(every log needs truth); auto (default): innovations")
     p.add_argument("--param", action="append", metavar="NAME",
                    help="tune only this parameter (repeatable), e.g. estimator.accel_psd")
@@ -686,10 +1043,17 @@ def _main(args) -> int:
     res = tune(args.logs, rig=args.rig, objective=args.objective, params=args.param,
                latency=args.latency, max_evals=args.max_evals, intervals=not args.no_intervals)
     print(res.summary())
+    if res.worse_against_truth:
+        # said on stdout first thing, and here too: a script that keeps only the rig
+        # must not miss it
+        print(f"rangefuse tune: warning: {res.worse_against_truth}", file=sys.stderr)
     with atomic_output(args.out, inputs=inputs) as tmp:
         with open(tmp, "w", encoding="utf-8") as fh:
             fh.write(f"# tuned by rangefuse tune ({res.objective}) from "
                      f"{', '.join(os.path.basename(p) for p in args.logs)}\n")
+            if res.worse_against_truth:
+                # the rig carries the warning with it
+                fh.write(f"# WARNING: {res.worse_against_truth}\n")
             fh.write(dumps(res.rig.to_dict(), trim_float_noise=True))
     print(f"tuned rig: {args.out}")
     if args.plot:
