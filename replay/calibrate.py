@@ -76,12 +76,6 @@ def register(subparsers):
     return p
 
 
-def _same_file(a, b):
-    if os.path.exists(a) and os.path.exists(b):
-        return os.path.samefile(a, b)
-    return os.path.realpath(a) == os.path.realpath(b)
-
-
 def read_pairs(path):
     """Read calibration pairs from a CSV file.
 
@@ -235,18 +229,15 @@ def _plot_format(path):
     supported = FigureCanvasAgg(Figure()).get_supported_filetypes()
     if ext not in supported:
         raise InputError(f"cannot tell the figure format from the name; expected one of "
-                         f".{', .'.join(sorted(supported))}", file=path)
+                         f".{', .'.join(sorted(supported))}", file=path, field="--plot")
     return ext
 
 
 def run(args) -> int:
+    # -o and --plot were checked by the command line before this runs (not an input,
+    # not one path, a folder that takes files, a figure suffix); both files are put in
+    # place together when the command ends (replay._io.command_outputs).
     src, out, plot = args.pairs, args.output, args.plot
-    for name, path in (("output", out), ("plot", plot)):
-        if path is not None and _same_file(path, src):
-            raise InputError(f"the {name} file is the input file; choose another name so the "
-                             "pairs are not overwritten", file=path)
-    if plot is not None and _same_file(plot, out):
-        raise InputError("the plot and the curve would be written to one file", file=plot)
     fmt = _plot_format(plot) if plot is not None else None
 
     range_m, values, kind, rows = read_pairs(src)
@@ -278,7 +269,8 @@ def run(args) -> int:
     document = _curve_document(result, src)
     figure = _plot_bytes(result, fmt, f"{os.path.basename(src)}: {result.model}") if plot else None
 
-    # Files first: the curve is kept even if the report cannot be printed.
+    # Files first: the curve is kept even if the report cannot be printed (in a command,
+    # both files wait for its end, so that they appear together).
     write_atomic(out, document)
     if figure is not None:
         write_atomic(plot, figure)

@@ -4,17 +4,29 @@ Each subcommand lives in its own module that exposes ``register(subparsers)``; t
 module adds its parser and sets ``func`` to a callable taking the parsed arguments and
 returning an exit code. User errors (`fusion.errors.RangefuseError`) print as one line
 and exit 2; ``--debug`` shows the traceback.
+
+Every command's outputs are checked before it runs and are put in place together when
+it ends (`replay._io.command_outputs`): by convention ``-o`` names the file a command
+writes and ``--plot`` a figure; a module whose outputs follow otherwise from its
+arguments defines ``outputs(args)`` returning `replay._io.Output` items. Every other
+argument that names an existing file is an input, which no output may overwrite.
+Ctrl-C and SIGTERM stop a command the same way, keeping no output.
 """
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
+import math
 import os
+import signal
 import sys
 import textwrap
 
 from fusion import __version__
-from fusion.errors import RangefuseError
+from fusion.errors import InputError, RangefuseError
+
+from . import _io
 
 SAFETY = ("Fused ranges are not a safety-rated protective function: do not rely on them to "
           "protect people; follow local codes, standards and licensed practice.")
@@ -33,8 +45,124 @@ COMMANDS = [
 ]
 
 
+# Count options checked here, whatever command has them: option -> least value. (The
+# commands check their other numbers themselves.)
+WHOLE_NUMBER_AT_LEAST = {"--max-evals": 1}
+
+
 class _Formatter(argparse.RawDescriptionHelpFormatter):
     pass
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised where the command is so that it stops as Ctrl-C stops it."""
+
+
+def _raise_terminated(signum, frame):
+    raise Terminated()
+
+
+@contextlib.contextmanager
+def _sigterm_as_interrupt():
+    try:
+        old = signal.signal(signal.SIGTERM, _raise_terminated)
+    except (ValueError, OSError, AttributeError):  # not the main thread: leave it be
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, old)
+
+
+class _Stdout:
+    """sys.stdout while a command runs: when the reader leaves (a broken pipe, e.g.
+    piped into head), the rest of the text is dropped and the command goes on to its
+    end, so that its outputs are still put in place, all of them."""
+
+    def __init__(self, stream):
+        self._stream = stream
+        self.left = False
+
+    def write(self, text):
+        if not self.left:
+            try:
+                return self._stream.write(text)
+            except BrokenPipeError:
+                self.left = True
+        return len(text)
+
+    def flush(self):
+        if not self.left:
+            try:
+                self._stream.flush()
+            except BrokenPipeError:
+                self.left = True
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+@contextlib.contextmanager
+def _reader_may_leave():
+    real = sys.stdout
+    proxy = sys.stdout = _Stdout(real)
+    try:
+        yield
+        proxy.flush()
+    finally:
+        sys.stdout = real
+        if proxy.left:  # nothing more reaches the reader, nor at exit
+            try:
+                sys.stdout = open(os.devnull, "w")
+            except OSError:
+                pass
+
+
+def _option_name(action) -> str:
+    for s in ("-o", "--plot"):
+        if s in action.option_strings:
+            return s
+    return max(action.option_strings, key=len) if action.option_strings else action.dest
+
+
+def _outputs_and_inputs(command_parser, args):
+    """The outputs the command will write and the files it reads, from its arguments."""
+    actions = [a for a in command_parser._actions if a.dest not in ("help", "version")]
+    out_dests = {a.dest for a in actions if {"-o", "--plot"} & set(a.option_strings)}
+    declared = getattr(args, "_outputs", None)
+    if declared is not None:
+        outputs = list(declared(args))
+    else:
+        outputs = []
+        for a in actions:
+            value = getattr(args, a.dest, None)
+            if a.dest in out_dests and isinstance(value, str):
+                outputs.append(_io.Output(value, "-o") if "-o" in a.option_strings else
+                               _io.Output(value, "--plot", _io.FIGURE_SUFFIXES))
+    inputs = []
+    for a in actions:
+        if a.dest in out_dests:
+            continue
+        value = getattr(args, a.dest, None)
+        for v in value if isinstance(value, (list, tuple)) else [value]:
+            if isinstance(v, str) and os.path.isfile(v):
+                inputs.append(v)
+    return outputs, inputs
+
+
+def _check_numbers(command_parser, args):
+    for a in command_parser._actions:
+        value = getattr(args, a.dest, None)
+        if value is None or not a.option_strings:
+            continue
+        least = next((WHOLE_NUMBER_AT_LEAST[s] for s in a.option_strings
+                      if s in WHOLE_NUMBER_AT_LEAST), None)
+        if least is not None and not (isinstance(value, int) and value >= least):
+            raise InputError(f"expected a whole number >= {least}, got {value}",
+                             field=_option_name(a))
+        if a.type is float and isinstance(value, float) and not math.isfinite(value):
+            raise InputError(f"expected a finite number, got {value}", field=_option_name(a))
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -56,7 +184,12 @@ def build_parser() -> argparse.ArgumentParser:
             if exc.name != modname:
                 raise
             continue
+        before = set(sub.choices)
         mod.register(sub)
+        if hasattr(mod, "outputs"):
+            for name in set(sub.choices) - before:
+                sub.choices[name].set_defaults(_outputs=mod.outputs)
+    parser.command_parsers = dict(sub.choices)
     for p in sub.choices.values():  # every command's --help carries the caution
         if "safety-rated" not in (p.epilog or ""):
             raw = issubclass(p.formatter_class, argparse.RawDescriptionHelpFormatter)
@@ -75,8 +208,14 @@ def main(argv=None) -> int:
     if not getattr(args, "func", None):
         parser.print_help()
         return 2
+    command_parser = parser.command_parsers[args.command]
     try:
-        return int(args.func(args) or 0)
+        with _sigterm_as_interrupt(), _reader_may_leave(), _io.command_outputs():
+            # every number and every output is checked before any work
+            _check_numbers(command_parser, args)
+            _io.check_outputs(*_outputs_and_inputs(command_parser, args))
+            code = int(args.func(args) or 0)
+        return code
     except RangefuseError as exc:
         if args.debug:
             raise
@@ -95,9 +234,11 @@ def main(argv=None) -> int:
         print(f"rangefuse {args.command}: error: {where}{exc.strerror or exc}; no partial "
               "output was kept", file=sys.stderr)
         return 2
-    except KeyboardInterrupt:
-        print(f"rangefuse {args.command}: interrupted; no partial output was kept", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (Terminated)
+        what, code = ("terminated", 128 + signal.SIGTERM) if isinstance(exc, Terminated) \
+            else ("interrupted", 130)
+        print(f"rangefuse {args.command}: {what}; no partial output was kept", file=sys.stderr)
+        return code
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import csv
 import json
+import math
 import os
 
 import h5py
@@ -27,7 +28,7 @@ import numpy as np
 from fusion import decisions as D
 from fusion.errors import InputError, LogFormatError
 
-from ._io import atomic_output
+from ._io import atomic_output, staged
 from .logfile import _hdf5_reason, hdf5_open_problem
 
 __all__ = ["track_to_csv", "csv_prefix", "TrackFile", "SLICE_ROWS", "DECISION_CSV_COLUMNS",
@@ -38,9 +39,10 @@ SUPPORTED_VERSION = 1
 SLICE_ROWS = 1 << 18                    # rows read per step (4 HDF5 chunks of the writer)
 
 # Decision columns read from the file, and the CSV columns made from them.
+# Every column of docs/track-format.md's decisions table, in its order.
 _DECISION_READ = ("sensor", "row", "t_s", "direction", "decision", "flags", "innovation_m",
-                  "nis", "branch", "branch_prob", "z_far_m", "z_near_m", "sigma_far_m",
-                  "sigma_near_m", "temp_c")
+                  "nis", "branch", "branch_prob", "loglik", "z_far_m", "z_near_m",
+                  "sigma_far_m", "sigma_near_m", "temp_c")
 DECISION_CSV_COLUMNS = _DECISION_READ   # sensor, direction, decision and flags by name
 # Track columns in the order a reader wants them (others follow in name order).
 TRACK_CSV_ORDER = ("t_s", "range_m", "sigma_m", "rate_mps", "rate_sigma_mps",
@@ -70,13 +72,15 @@ class TrackFile:
 
     def __init__(self, path):
         self.path = os.fspath(path)
-        if not os.path.exists(self.path):
+        # a track file this command wrote is read where it waits to be put in place
+        where = staged(self.path)
+        if not os.path.exists(where):
             raise InputError("no such file; expected a track file written by "
                              "`rangefuse replay`", file=self.path)
-        if os.path.isdir(self.path):
+        if os.path.isdir(where):
             raise InputError("is a folder; expected a track file", file=self.path)
         try:
-            self.f = h5py.File(self.path, "r")
+            self.f = h5py.File(where, "r")
         except OSError as exc:
             raise LogFormatError(f"{hdf5_open_problem(exc)}; expected a track file written by "
                                  "`rangefuse replay`", file=self.path) from None
@@ -245,6 +249,33 @@ class TrackFile:
             raise self.error(f"cannot read rows {start}..{stop - 1} ({_hdf5_reason(exc)}); "
                              "the file may be damaged", field=ds.name) from None
 
+    def time_span(self, group):
+        """``(first_s, last_s)``: the earliest and latest finite reading time of one run's
+        decisions, or None when it has none."""
+        t = self.decisions(group)["t_s"]
+        lo, hi = np.inf, -np.inf
+        for a, b in self.slices(t.shape[0]):
+            v = self.read(t, a, b)
+            v = v[np.isfinite(v)]
+            if v.size:
+                lo, hi = min(lo, float(v.min())), max(hi, float(v.max()))
+        return (lo, hi) if lo <= hi else None
+
+    def check_time_range(self, group, lo, hi) -> None:
+        """Refuse a time range (``--from``/``--to``, seconds) that misses the run's
+        readings altogether: it would draw an empty figure."""
+        if math.isinf(lo) and math.isinf(hi):
+            return
+        span = self.time_span(group)
+        if span is None:
+            return
+        if lo > span[1] or hi < span[0]:
+            a = "start" if math.isinf(lo) else f"{lo:g} s"
+            b = "end" if math.isinf(hi) else f"{hi:g} s"
+            raise InputError(f"no reading between {a} and {b}; the track spans "
+                             f"{span[0]:g} s to {span[1]:g} s", file=self.path,
+                             field="--from" if lo > span[1] else "--to")
+
     def slices(self, n, rows=None):
         rows = SLICE_ROWS if rows is None else rows   # read at call time (tests shrink it)
         for start in range(0, n, rows):
@@ -325,8 +356,9 @@ def track_to_csv(track_path, out_prefix=None) -> list:
     ``<prefix>.decisions.csv`` has one row per input reading: ``sensor`` (name),
     ``row``, ``t_s``, ``direction`` (name), ``decision`` (name), ``flags`` (names joined
     by ``|``), ``innovation_m``, ``nis``, ``branch`` (``far``, ``near`` or empty: the
-    candidate fused; for a reading with one candidate, ``far``), ``branch_prob``, ``z_far_m``,
-    ``z_near_m``, ``sigma_far_m``, ``sigma_near_m``, ``temp_c``. A file holding several
+    candidate fused; for a reading with one candidate, ``far``), ``branch_prob``,
+    ``loglik``, ``z_far_m``, ``z_near_m``, ``sigma_far_m``, ``sigma_near_m``, ``temp_c``:
+    every column of the decisions in docs/track-format.md, in its order. A file holding several
     replayed logs gets a leading ``run`` column in both. Missing values (NaN) are empty
     fields; floats are written with the shortest text that reads back exactly.
     Both files are written atomically (either both appear, or neither does), streaming

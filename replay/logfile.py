@@ -413,6 +413,22 @@ def _write_layout(f, rig_toml, streams, env, tru, clock, writer, created_utc) ->
 # --------------------------------------------------------------------------------------
 # Reading
 # --------------------------------------------------------------------------------------
+def _bad_rows(ds, start, stop) -> tuple:
+    """First and last row of the first chunk of ``ds[start:stop]`` that cannot be read
+    (the rows a damaged chunk holds, within the dataset); the whole span read when no
+    single chunk fails on its own."""
+    n = ds.shape[0] if ds.shape else 0
+    start, stop, _ = slice(start, stop).indices(n)
+    size = ds.chunks[0] if ds.chunks else max(stop - start, 1)
+    for lo in range(start - start % size, stop, size):
+        hi = min(lo + size, n)
+        try:
+            ds[lo:hi]
+        except (OSError, RuntimeError):
+            return lo, hi - 1
+    return start, max(start, stop - 1)
+
+
 def _hdf5_reason(exc: BaseException) -> str:
     """The innermost reason of an h5py error ("file signature not found"), else its text."""
     text = str(exc)
@@ -699,7 +715,9 @@ class LogFile:
                 msg = "checksum failed — the file is corrupt"
             else:
                 msg = "cannot read the data — the file is corrupt or truncated"
-            raise self._err(f"{msg} (rows {start}..{stop}; HDF5: {reason})", field, start) from None
+            first, last = _bad_rows(ds, start, stop)
+            raise self._err(f"{msg} (rows {first}..{last}; HDF5: {reason})", field,
+                            first) from None
 
     def unprotected_datasets(self) -> list:
         """Paths of 1-D datasets stored without the Fletcher-32 checksum filter (whose

@@ -478,6 +478,7 @@ def plot_track(track_path, out=None, direction=None, t_range=None, max_points=20
     with TrackFile(track_path) as tf:
         group = tf.run(run)
         dirs = tf.directions(direction)
+        tf.check_time_range(group, lo_t, hi_t)
         data = _collect_track(tf, group, dirs, lo_t, hi_t, max_points)
         data["title"] = _run_label(tf, group, run)
         data["sensors"] = tf.sensor_names
@@ -987,6 +988,7 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
     with TrackFile(track_path) as tf:
         group = tf.run(run)
         dirs = tf.directions(direction)
+        tf.check_time_range(group, lo_t, hi_t)
         dec = tf.decisions(group)
         dir_index = {tf.direction_names.index(d): d for d in dirs}
         n_all = dec["t_s"].shape[0]

@@ -870,7 +870,9 @@ def register(sub):
     p.add_argument("-o", "--out", required=True,
                    help="track file (one log) or folder (several logs)")
     p.add_argument("--smooth", action="store_true", help="add Rauch-Tung-Striebel smoothing")
-    p.add_argument("--plot", metavar="FIG.png", help="also draw fused versus raw tracks")
+    p.add_argument("--plot", metavar="FIG.png",
+                   help="also draw fused versus raw tracks (several logs: one figure per log, "
+                        "FIG.<log>.png)")
     p.add_argument("--csv", action="store_true",
                    help="also write OUT.track.csv and OUT.decisions.csv")
     p.add_argument("--window", type=float, default=None, metavar="S",
@@ -879,8 +881,8 @@ def register(sub):
     p.set_defaults(func=_main)
 
 
-def _main(args) -> int:
-    from ._io import FIGURE_SUFFIXES, check_output
+def _targets(args):
+    """(log, track file, figure or None) per log, from the arguments."""
     if len(args.logs) == 1:
         outs = [args.out]
     else:
@@ -893,35 +895,44 @@ def _main(args) -> int:
                              field="-o")
         outs = [os.path.join(args.out, os.path.splitext(os.path.basename(p))[0] + ".track.h5")
                 for p in args.logs]
-    extra = [args.rig] if args.rig else []
+        if len(set(map(os.path.abspath, outs))) < len(outs):
+            raise InputError("two logs have the same file name, so their track files would "
+                             "collide in the folder; replay them separately", file=args.out,
+                             field="-o")
     figs = [None] * len(outs)
     if args.plot:
+        # one figure per log, named from --plot: multi.png -> multi.<log>.png
+        stem, ext = os.path.splitext(args.plot)
         figs = [args.plot] if len(outs) == 1 else \
-            [os.path.splitext(o)[0] + os.path.splitext(args.plot)[1] for o in outs]
-    if len(set(map(os.path.abspath, outs))) < len(outs):
-        raise InputError("two logs have the same file name, so their track files would "
-                         "collide in the folder; replay them separately", file=args.out,
-                         field="-o")
-    # Every output is checked before any work: a bad --plot must not cost a whole replay
-    # and leave the track file behind (nor an empty folder made for it).
-    made = len(outs) > 1 and not os.path.isdir(args.out)
-    if len(outs) > 1:
-        os.makedirs(args.out, exist_ok=True)
-    try:
-        for out, fig in zip(outs, figs):
-            check_output(out, args.logs + extra, field="-o")
-            if fig is not None:
-                check_output(fig, args.logs + extra + [out], field="--plot",
-                             suffixes=FIGURE_SUFFIXES)
-            if args.csv:
-                from .export import csv_prefix
-                for end in (".track.csv", ".decisions.csv"):
-                    check_output(csv_prefix(out) + end, args.logs + extra, field="--csv")
-    except InputError:
-        if made:
-            os.rmdir(args.out)
-        raise
-    for log, out, fig in zip(args.logs, outs, figs):
+            [f"{stem}.{os.path.splitext(os.path.basename(p))[0]}{ext}" for p in args.logs]
+    return list(zip(args.logs, outs, figs))
+
+
+def outputs(args) -> list:
+    """Every file `rangefuse replay` will write (checked by the command line before any
+    work): the track files (and their folder, with several logs), figures and CSVs."""
+    from ._io import FIGURE_SUFFIXES, Output
+    from .export import csv_prefix
+    found = [Output(args.out, "-o", folder=True)] if len(args.logs) > 1 else []
+    for _log, out, fig in _targets(args):
+        found.append(Output(out, "-o"))
+        if fig is not None:
+            found.append(Output(fig, "--plot", FIGURE_SUFFIXES))
+        if args.csv:
+            found += [Output(csv_prefix(out) + end, "--csv")
+                      for end in (".track.csv", ".decisions.csv")]
+    return found
+
+
+def _main(args) -> int:
+    # The outputs were checked by the command line (`outputs`), and are put in place
+    # together when the command ends (replay._io.command_outputs).
+    from ._io import make_folder
+    extra = [args.rig] if args.rig else []
+    plan = _targets(args)
+    if len(plan) > 1:
+        make_folder(args.out)
+    for log, out, fig in plan:
         res = run(log, rig=args.rig, out=out, smooth=args.smooth, window_s=args.window,
                   progress=sys.stderr.isatty(), inputs_extra=extra)
         if not args.quiet:

@@ -4,11 +4,19 @@ from __future__ import annotations
 
 import argparse
 import math
+import textwrap
 
+from fusion.errors import InputError
 from fusion.rig import Rig
-from fusion.screening import safe_cycle_s
+from fusion.screening import _T_MAX_C, _T_MIN_C, safe_cycle_s
+
+from .cli import SAFETY
 
 __all__ = ["firing_plan", "register"]
+
+
+def _num(x) -> str:
+    return f"{x:g}" if isinstance(x, (int, float)) else repr(x)
 
 
 def firing_plan(rig: Rig, temp_min_c: float = -10.0, margin: float = 1.1):
@@ -24,7 +32,19 @@ def firing_plan(rig: Rig, temp_min_c: float = -10.0, margin: float = 1.1):
       of units);
     - ``rate_hz``: readings per second of each unit (``1 / round_s``);
     - ``order``: ``(name, offset_s)`` of each unit within the round.
+
+    Raises `InputError` for a `temp_min_c` outside -60..90 degC or a `margin` below 1.
     """
+    # The air temperatures the speed-of-sound model is used over (fusion.screening takes
+    # samples outside them for failed ones); a margin below 1 would let a late echo
+    # reach the next unit's window.
+    if not (isinstance(temp_min_c, (int, float)) and _T_MIN_C <= temp_min_c <= _T_MAX_C):
+        raise InputError(f"expected the lowest air temperature in {_T_MIN_C:g}..{_T_MAX_C:g} "
+                         f"degC, got {_num(temp_min_c)}", field="--temp-min")
+    if not (isinstance(margin, (int, float)) and math.isfinite(margin) and margin >= 1.0):
+        raise InputError(f"expected a factor >= 1 (1.1 leaves 10 % for late echoes), got "
+                         f"{_num(margin)}; below 1 the next unit fires before an echo can return",
+                         field="--margin")
     order = list(rig.schedule.order) or list(rig.echo_names)
     if not order:
         return {"order": [], "slot_s": 0.0, "round_s": 0.0, "rate_hz": 0.0}
@@ -76,7 +96,8 @@ def _main(args) -> int:
     names = ", ".join(f'"{name}"' for name, _ in plan["order"])
     # rounded up to the microsecond, so the pasted value is never below the safe slot
     cycle_us = math.ceil(plan["slot_s"] * 1e6 - 1e-6)
-    print("\nrig TOML:\n[schedule]\nmode = \"round_robin\"\n"
+    caution = "".join(f"# {line}\n" for line in textwrap.wrap(SAFETY, 86))
+    print("\nrig TOML:\n" + caution + "[schedule]\nmode = \"round_robin\"\n"
           f"cycle_s = {cycle_us / 1e6:.6f}   # time between consecutive pings (one slot)\n"
           f"order = [{names}]")
     return 0
