@@ -798,6 +798,11 @@ def tune(logs, rig=None, *, objective="auto", params=None, latency=False, max_ev
         ``worse_against_truth`` says so (and the summary leads with a warning).
     """
     t0 = time.perf_counter()
+    if isinstance(max_evals, bool) or not isinstance(max_evals, (int, np.integer)) or max_evals < 1:
+        raise InputError(f"expected a whole number >= 1, got {max_evals!r}", field="max_evals")
+    if objective not in ("auto", "innovations", "truth"):
+        raise InputError(f"expected 'auto', 'innovations' or 'truth', got {objective!r}",
+                         field="objective")
     paths = [os.fspath(logs)] if isinstance(logs, (str, os.PathLike)) else [os.fspath(p) for p in logs]
     rig = load_rig(rig)
     if rig is None:

@@ -225,3 +225,17 @@ def test_a_clearly_worse_rig_is_reported_first_and_loudly():
                      loglik_before=0.0, loglik_after=0.0, nis_before=(1.0, 10, (0.5, 1.5)),
                      nis_after=(1.0, 10, (0.5, 1.5)), rig=None, worse_against_truth=worse)
     assert res.summary().startswith("WARNING: the tuned rig is clearly worse")
+
+
+@pytest.mark.parametrize("kw, field", [({"max_evals": -1}, "max_evals"),
+                                       ({"max_evals": 0}, "max_evals"),
+                                       ({"max_evals": 2.5}, "max_evals"),
+                                       ({"objective": "truthy"}, "objective")])
+def test_tune_checks_its_arguments_at_the_door(kw, field):
+    # A library call gets the same clear refusal the command gives (DEVELOPERS.md,
+    # "Conventions": user errors raise the fusion.errors family naming the field).
+    from fusion.errors import InputError
+    from replay.tune import tune
+    with pytest.raises(InputError) as exc:
+        tune(SHELF, **kw)
+    assert exc.value.field == field
