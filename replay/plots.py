@@ -721,6 +721,7 @@ def _robust_limits(values, pad=0.06, lower=0.0):
 def _draw_track(data, dirs):
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
+    from matplotlib.patches import Rectangle
     from matplotlib.transforms import blended_transform_factory
 
     names = data["decision_names"]
@@ -793,6 +794,16 @@ def _draw_track(data, dirs):
             used_sensors.add(s)
             used_reasons.add(c)
             any_rug = True
+        if rug_rows:
+            # a lane of its own, shaded and labelled, so its marks do not read as ranges
+            floor = 0.975 - 0.035 * (len(rug_rows) - 1) - 0.025
+            ax.add_patch(Rectangle((0.0, floor), 1.0, 1.0 - floor, transform=ax.transAxes,
+                                   facecolor="#f2f2f2", edgecolor="none", zorder=0.5,
+                                   gid=f"rug-lane:{d}"))
+            ax.plot([0, 1], [floor, floor], color="#bbbbbb", lw=0.6, zorder=0.6,
+                    transform=ax.transAxes)
+            ax.text(0.004, floor - 0.008, "no range \u2191", transform=ax.transAxes,
+                    fontsize=6.5, color="#777777", va="top", ha="left", zorder=9)
         tb, lo, hi = info["fused_band"]
         if tb.size:
             ax.fill_between(tb, lo, hi, color=FUSED_COLOUR, alpha=BAND_ALPHA, lw=0, zorder=4,
