@@ -1340,6 +1340,22 @@ def _end_labels(fig, ax, ends, fontsize=8.0):
     if not ends:
         return
     fig.canvas.draw()     # the layout and the axis limits the labels are placed against
+    # Room for the labels inside the axes (they are placed after the layout, which would
+    # not make room for them: the widest was cut at the figure's edge).
+    renderer = fig.canvas.get_renderer()
+    probe = ax.text(0, 0, max((f"{v:.4g}" for _, v, _, _ in ends), key=len),
+                    fontsize=fontsize, transform=None)
+    need_px = probe.get_window_extent(renderer).width + 8 * fig.dpi / 72.0 + 4
+    probe.remove()
+    x0, x1 = ax.get_xlim()
+    box = ax.get_window_extent(renderer)
+    x_last = max(x for x, _, _, _ in ends)
+    room_px = (x1 - x_last) / (x1 - x0) * box.width
+    if room_px < need_px and box.width > need_px:
+        # solve for the new right limit that leaves need_px after the last point
+        per_px = (x_last - x0) / (box.width - need_px)
+        ax.set_xlim(x0, x_last + need_px * per_px)
+        fig.canvas.draw()
     y = np.array([ax.transData.transform((x, v))[1] for x, v, _, _ in ends])
     gap = 1.3 * fontsize * fig.dpi / 72.0          # one line of text, in pixels
     order = np.argsort(y)
