@@ -61,7 +61,7 @@ def register(subparsers):
                      "Prints the fit and the residuals and writes the curve as TOML."),
         epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("pairs", metavar="PAIRS.csv", help="CSV with range_m and volts (or counts) columns")
-    p.add_argument("-o", "--output", metavar="CURVE.toml", required=True,
+    p.add_argument("-o", "--output", "--out", dest="output", metavar="CURVE.toml", required=True,
                    help="where to write the curve (written atomically; never over the input)")
     p.add_argument("--plot", metavar="FIG.png", help="also draw the fit and its residuals")
     p.add_argument("--model", choices=("auto", SATURATING_INVERSE, TABLE), default="auto",

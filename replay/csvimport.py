@@ -300,7 +300,8 @@ def register(subparsers) -> None:
         epilog=_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("csv", metavar="CSV", help="text log, one reading per row")
     p.add_argument("--rig", metavar="RIG", required=True, help="rig description (TOML)")
-    p.add_argument("-o", "--output", metavar="LOG", required=True, help="log file to write (.h5)")
+    p.add_argument("-o", "--output", "--out", dest="output", metavar="LOG", required=True,
+                   help="log file to write (.h5)")
     p.add_argument("--strict", action="store_true",
                    help="write nothing and exit 2 if any row cannot be read")
     p.add_argument("--clock", default="", metavar="TEXT",

@@ -78,7 +78,7 @@ def register(sub):
                     "ambiguity resolutions, NIS consistency).",
         epilog="example:\n  rangefuse demo --out demo-out\n  rangefuse demo --log shelf-pass",
         formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--out", default="rangefuse-demo", metavar="DIR",
+    p.add_argument("--out", "--output", dest="out", default="rangefuse-demo", metavar="DIR",
                    help="folder for the outputs (default ./rangefuse-demo)")
     p.add_argument("--log", default=DEMO_LOGS[0], choices=DEMO_LOGS, help="which demo log")
     p.set_defaults(func=_main)

@@ -1400,7 +1400,7 @@ def register(sub):
                "--direction front --from 10 --to 70",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("track", metavar="TRACK", help="track file (HDF5) from `rangefuse replay`")
-    p.add_argument("-o", "--out", required=True, metavar="FIG",
+    p.add_argument("-o", "--out", "--output", dest="out", required=True, metavar="FIG",
                    help="figure file to write (.png, .pdf, .svg, ...)")
     p.add_argument("--kind", choices=("track", "diagnostics"), default="track",
                    help="which figure (default track)")

@@ -867,7 +867,7 @@ def register(sub):
                "--smooth --plot dock.png", formatter_class=__import__("argparse").RawDescriptionHelpFormatter)
     p.add_argument("logs", nargs="+", metavar="LOG", help="log file(s) (HDF5)")
     p.add_argument("--rig", help="rig TOML to use instead of the one embedded in each log")
-    p.add_argument("-o", "--out", required=True,
+    p.add_argument("-o", "--out", "--output", dest="out", required=True,
                    help="track file (one log) or folder (several logs)")
     p.add_argument("--smooth", action="store_true", help="add Rauch-Tung-Striebel smoothing")
     p.add_argument("--plot", metavar="FIG.png",

@@ -674,7 +674,8 @@ def _seed_arg(text):
 
 def _add_arguments(p):
     p.add_argument("scenario", help="scenario file (TOML, see docs/scenario.md)")
-    p.add_argument("-o", "--output", required=True, help="log file to write (HDF5)")
+    p.add_argument("-o", "--output", "--out", dest="output", required=True,
+                   help="log file to write (HDF5)")
     p.add_argument("--seed", type=_seed_arg, default=None,
                    help="random seed (default: the scenario's seed)")
     p.add_argument("-q", "--quiet", action="store_true", help="do not print the summary")

@@ -1025,7 +1025,8 @@ def register(sub):
                    help="log file(s) (HDF5) to tune on; several logs are fitted together, "
                         "each on its own tracks")
     p.add_argument("--rig", help="starting rig (default: the one in the first log)")
-    p.add_argument("-o", "--out", required=True, metavar="TUNED.toml", help="tuned rig to write")
+    p.add_argument("-o", "--out", "--output", dest="out", required=True, metavar="TUNED.toml",
+                   help="tuned rig to write")
     p.add_argument("--objective", choices=("auto", "innovations", "truth"), default="auto",
                    help="innovations: maximise the innovations log-likelihood (needs no "
                         "ground truth); truth: fit each sensor's noise to its residuals "
