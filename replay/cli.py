@@ -167,7 +167,7 @@ def _check_numbers(command_parser, args):
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="rangefuse",
+        prog="rangefuse", allow_abbrev=False,
         description=("Fuse IR triangulation rangers and ultrasonic echo rangers into one range "
                      "with an honest uncertainty; replay, tune and plot logged runs."),
         epilog="examples:\n  rangefuse demo --out demo-out\n"
@@ -190,6 +190,9 @@ def build_parser() -> argparse.ArgumentParser:
             for name in set(sub.choices) - before:
                 sub.choices[name].set_defaults(_outputs=mod.outputs)
     parser.command_parsers = dict(sub.choices)
+    for p in sub.choices.values():
+        # an option is spelt out: a shortened one (--smoo) could mean another tomorrow
+        p.allow_abbrev = False
     for p in sub.choices.values():  # every command's --help carries the caution
         if "safety-rated" not in (p.epilog or ""):
             raw = issubclass(p.formatter_class, argparse.RawDescriptionHelpFormatter)
@@ -203,7 +206,11 @@ def main(argv=None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     # --debug is accepted anywhere on the line, before or after the command
     debug = "--debug" in argv
-    args = parser.parse_args([a for a in argv if a != "--debug"])
+    args, extra = parser.parse_known_args([a for a in argv if a != "--debug"])
+    if extra:
+        # said by the command's own parser, so its usage line is the one shown
+        (parser.command_parsers.get(getattr(args, "command", None)) or parser).error(
+            f"unrecognized arguments: {' '.join(extra)}")
     args.debug = debug
     if not getattr(args, "func", None):
         parser.print_help()

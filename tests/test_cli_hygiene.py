@@ -357,3 +357,17 @@ def test_decisions_csv_holds_every_documented_column_with_loglik(folder, capsys)
     got = np.array([float(r[col]) if r[col] else np.nan for r in rows[1:]])
     assert np.isfinite(want).any()
     np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("wrong", ["--smoth", "--smoo"])
+def test_a_misspelt_or_shortened_option_is_refused_by_the_command(tmp_path, capsys, wrong):
+    # The command's own usage line is shown (not the top level's), and a shortened option
+    # is not guessed: it could name another option once one is added.
+    log = os.path.join(ROOT, "datasets", "shelf-pass.h5")
+    out = tmp_path / "x.track.h5"
+    with pytest.raises(SystemExit) as exc:
+        main(["replay", log, "-o", str(out), wrong])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err
+    assert "usage: rangefuse replay" in err and f"unrecognized arguments: {wrong}" in err
+    assert not out.exists()
