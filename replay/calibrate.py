@@ -16,7 +16,7 @@ import numpy as np
 
 from fusion import __version__
 from fusion._toml import dumps
-from fusion.errors import InputError
+from fusion.errors import InputError, RangefuseError
 from fusion.sensors.adc import adc_quantisation_sigma_v, counts_to_volts
 from fusion.sensors.triangulation import SATURATING_INVERSE, TABLE, fit_report
 
@@ -50,6 +50,14 @@ ranger's [[sensor]] entry and rename its header to [sensor.curve] (docs/rig.md,
 USAGE_NOTE = ("to use it: copy its [curve] table into the rig file below the IR ranger's "
               "[[sensor]] entry,\n  renamed [sensor.curve] (docs/rig.md, \"Curves\"); "
               "[calibration] only records the fit")
+
+
+# the options that set a curve's span, by the curve key they set
+_SPAN_OPTIONS = {"min_range_m": "--min-range", "max_range_m": "--max-range"}
+
+# An IR triangulation ranger's analog output stays inside its supply (logic supplies of
+# 3.3-5 V; common practice, no source): a pair far outside is a typing or unit slip.
+_VOLTS_PLAUSIBLE = (-1.0, 30.0)
 
 
 def register(subparsers):
@@ -135,6 +143,10 @@ def read_pairs(path):
                     raise InputError(f"the row has {len(cells)} cell(s); expected at least {need} "
                                      "to reach the range_m and " + kind + " columns", file=path,
                                      row=row)
+                if len(cells) > len(header) and any(c.strip() for c in cells[len(header):]):
+                    raise InputError(f"the row has {len(cells)} cells but the header names "
+                                     f"{len(header)}; expected one value per column", file=path,
+                                     row=row)
                 got = []
                 for name, i in cols:
                     text = cells[i].strip()
@@ -144,6 +156,10 @@ def read_pairs(path):
                         shown = repr(text) if text else "an empty cell"
                         raise InputError(f"{shown} is not a number; expected {name} as a decimal "
                                          "number", file=path, field=name, row=row) from None
+                lo, hi = _VOLTS_PLAUSIBLE
+                if kind == "volts" and not lo <= got[1] <= hi:
+                    raise InputError(f"{got[1]:g} V is no ranger output; expected volts between "
+                                     f"{lo:g} and {hi:g}", file=path, field="volts", row=row)
                 ranges.append(got[0])
                 values.append(got[1])
                 rows.append(row)
@@ -263,8 +279,16 @@ def run(args) -> int:
         if kind == "volts":
             adc_note += "; the volts column was used as it is"
 
-    result = fit_report(range_m, volts, args.model, min_range_m=args.min_range_m,
-                        max_range_m=args.max_range_m, where=src, rows=rows)
+    try:
+        result = fit_report(range_m, volts, args.model, min_range_m=args.min_range_m,
+                            max_range_m=args.max_range_m, where=src, rows=rows)
+    except RangefuseError as exc:
+        option = _SPAN_OPTIONS.get(exc.field)
+        given = option and getattr(args, exc.field, None) is not None
+        if not given:
+            raise
+        # the span came from the command line: name the option, not the curve's key
+        raise InputError(exc.message, field=option) from None
     # Everything that can fail is done before the first file is written.
     document = _curve_document(result, src)
     figure = _plot_bytes(result, fmt, f"{os.path.basename(src)}: {result.model}") if plot else None

@@ -97,6 +97,10 @@ def test_calibrate_table_model_on_request(pairs_csv, tmp_path):
      ["near side"]),
     (["range_m", "volts"], [(0.05 * (i + 1), 1.0) for i in range(7)] + [(-0.4, 1.0)], [],
      ["negative", "row 9"]),
+    # more values than the header names: a shifted column would be fitted silently
+    (["range_m", "volts"], [(0.1, 2.3, 7), (0.2, 2.5)], [], ["row 2", "header names 2"]),
+    # an analog ranger's output stays inside its supply (common practice, no source)
+    (["range_m", "volts"], [(0.1, 2.3), (0.2, 1e6)], [], ["volts", "row 3", "no ranger output"]),
 ])
 def test_bad_input_exits_2_with_one_line(tmp_path, capsys, header, rows, extra, needles):
     src = _write_csv(tmp_path / "bad.csv", header, rows)
@@ -241,3 +245,12 @@ def test_toml_syntax_error_names_file_and_line():
     with pytest.raises(ConfigError) as err:
         loads("a = 1\nb = = 2\n", "x.toml")
     assert err.value.row == 2 and "x.toml" in str(err.value)
+
+
+def test_a_span_from_the_command_line_is_named_by_its_option(pairs_csv, tmp_path, capsys):
+    out = tmp_path / "c.toml"
+    assert main(["calibrate", str(pairs_csv), "-o", str(out), "--min-range", "0.5",
+                 "--max-range", "0.2"]) == 2
+    line = _one_error_line(capsys)
+    assert "--max-range" in line and "0.5 and 0.2" in line
+    assert not out.exists()
