@@ -329,8 +329,9 @@ def check_log(path, rig=None) -> CheckReport:
                 problems.append(exc.one_line())
         if rig is not None:
             _check_rig_coverage(log, rig, problems, warnings)
-    return CheckReport(path, tuple(problems), tuple(warnings), tuple(header), tuple(sensors),
-                       tuple(env), tuple(truth))
+    # one line per distinct finding, in the order found
+    return CheckReport(path, tuple(dict.fromkeys(problems)), tuple(dict.fromkeys(warnings)),
+                       tuple(header), tuple(sensors), tuple(env), tuple(truth))
 
 
 def _check_sensor(log, name, info, rig, problems, warnings) -> StreamSummary:
@@ -349,10 +350,15 @@ def _check_sensor(log, name, info, rig, problems, warnings) -> StreamSummary:
                                   f"but the rig describes {model.kind}/{model.output}"))
             model = None
     if model is not None:
-        temp_at = _interp(log, rig.air.stream, *_TEMP_RANGE_C, rig.air.fallback_temp_c)
-        rh_at = _interp(log, rig.air.humidity_stream, 0.0, 1.0, rig.air.relative_humidity)
+        try:
+            temp_at = _interp(log, rig.air.stream, *_TEMP_RANGE_C, rig.air.fallback_temp_c)
+            rh_at = _interp(log, rig.air.humidity_stream, 0.0, 1.0, rig.air.relative_humidity)
+            power_up = _first_value(log, rig.air.stream, rig.air.fallback_temp_c)
+        except LogFormatError:
+            # an unreadable air stream is reported once, by its own check; this sensor's
+            # readings are still checked, only not decoded with the rig
+            model = None
         sigma = rig.air.temp_sigma_c
-        power_up = _first_value(log, rig.air.stream, rig.air.fallback_temp_c)
     if info.has_ping and info.kind != "echo":
         warnings.append(_line(path, f"{where}/ping_t_s", None, "ping times on an IR "
                               "triangulation ranger are ignored; expected them on echo rangers only"))

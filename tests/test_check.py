@@ -276,3 +276,26 @@ def test_help_has_an_example(capsys):
         main(["check", "--help"])
     assert exc.value.code == 0
     assert "example:\n  rangefuse check" in capsys.readouterr().out
+
+
+def test_a_damaged_air_stream_is_one_problem_and_the_sensors_are_still_checked(tmp_path):
+    # A flipped byte in the air stream's data fails its Fletcher-32 checksum (HDF5's
+    # filter; Fletcher 1982): reported once, at the stream, and the sensors' own rows are
+    # still checked and summarised (every echo sensor reads the air to decode, so the
+    # same failure had been listed once per sensor, and their summaries lost).
+    import os
+    import shutil
+    src = os.path.join(os.path.dirname(__file__), "..", "datasets", "shelf-pass.h5")
+    path = str(tmp_path / "damaged.h5")
+    shutil.copy(src, path)
+    with h5py.File(path, "r") as f:
+        ds = f["environment/air_temp/value"]
+        info = ds.id.get_chunk_info(0)
+    data = bytearray(open(path, "rb").read())
+    data[info.byte_offset + info.size // 2] ^= 0xFF
+    open(path, "wb").write(bytes(data))
+    rep = check_log(path)
+    assert len(rep.problems) == 1
+    assert "/environment/air_temp/value" in rep.problems[0] and "checksum" in rep.problems[0]
+    assert len(rep.sensors) == 4
+    assert all(np.isfinite(s.rate_hz) for s in rep.sensors)
