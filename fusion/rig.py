@@ -45,6 +45,11 @@ def _line_of(text: str | None, *needles: str) -> int | None:
     for i in range(start, len(lines)):
         if pat.match(lines[i]):
             return i + 1
+    # a key that is a sub-table: its header, [sensor.curv] for "curv"
+    head = re.compile(r"\s*\[\[?[^\]]*\.\s*" + re.escape(needles[0]) + r"\s*\]")
+    for i in range(start, len(lines)):
+        if head.match(lines[i]):
+            return i + 1
     return None
 
 

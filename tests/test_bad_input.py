@@ -419,6 +419,7 @@ def _rig_file(tmp_path, old, new, name="rig.toml"):
     ('name = "front"', 'name = "front"\n[estimator]\ngate_probability = 2.0',
      "estimator.gate_probability", ("(0.5, 1]",)),
     ('[air]', '[aire]', "aire", ("unknown top-level key 'aire'",)),   # a misspelt table
+    ('[sensor.curve]', '[sensor.curv]', "sensor.ir.curv", ("unknown key 'curv'",)),  # sub-table
 ])
 def test_rig_toml_errors_name_the_key_and_line(tmp_path, capsys, old, new, field, words):
     path, line = _rig_file(tmp_path, old, new)
