@@ -260,6 +260,74 @@ def apply(rig: Rig, params) -> Rig:
     return rig.replace(estimator=est, sensors=sensors)
 
 
+_TUNED_MARK = "tuned by rangefuse tune"
+
+
+def rig_text_with(text, tuned: Rig, params, head=()) -> str:
+    """The rig file `text` with each parameter's tuned value put in place, so the tuned
+    rig keeps the user's comments, order and spelling; `head` lines go first (a previous
+    tuning's head lines are replaced).
+
+    Each value replaces its key's value on its own line (a trailing comment stays), or is
+    added after the table's header or the sensor's ``name`` line where the key was left
+    to its default. When the text cannot be edited so that it reads back as `tuned`
+    (an unusual layout: inline tables, a key spread over lines), the whole rig is written
+    out instead.
+    """
+    import re
+
+    from fusion._toml import _float
+
+    def fallback():
+        return "\n".join(list(head) + [dumps(tuned.to_dict(), trim_float_noise=True)])
+
+    if not text or not text.strip():
+        return fallback()
+    lines = text.splitlines()
+    if lines and lines[0].startswith(f"# {_TUNED_MARK}"):  # a previous tuning's head
+        lines.pop(0)
+        while lines and (lines[0].startswith("#   ") or lines[0].startswith("# WARNING:")):
+            lines.pop(0)
+    header = re.compile(r"\s*\[")
+    for p in params:
+        parts = p.name.split(".")
+        key, value = parts[-1], _float(float(p.value), trim=True)
+        if parts[0] == "estimator":
+            starts = [i for i, ln in enumerate(lines) if re.match(r"\s*\[\s*estimator\s*\]", ln)]
+            if not starts:
+                lines += ["", "[estimator]", f"{key} = {value}"]
+                continue
+            lo, anchor = starts[0], starts[0]
+        elif parts[0] == "sensor":
+            name = ".".join(parts[1:-1])
+            named = re.compile(r"\s*name\s*=\s*[\"']" + re.escape(name) + r"[\"']\s*(#.*)?$")
+            hit = next((i for i, ln in enumerate(lines) if named.match(ln)), None)
+            if hit is None:
+                return fallback()
+            lo = hit
+            while lo > 0 and not header.match(lines[lo]):
+                lo -= 1
+            anchor = hit
+        else:
+            return fallback()
+        hi = next((i for i in range(lo + 1, len(lines)) if header.match(lines[i])), len(lines))
+        line_of_key = re.compile(r"(\s*" + re.escape(key) + r"\s*=\s*)([^#]*?)(\s*#.*)?$")
+        at = next((i for i in range(lo + 1, hi) if line_of_key.match(lines[i])), None)
+        if at is None:
+            lines.insert(anchor + 1, f"{key} = {value}")
+        else:
+            m = line_of_key.match(lines[at])
+            lines[at] = m.group(1) + value + (m.group(3) or "")
+    out = "\n".join(list(head) + lines) + "\n"
+    try:
+        # compared as written out (a NaN, an unset power-up air, is not equal to itself)
+        same = dumps(Rig.from_toml(out).to_dict()) == \
+            dumps(Rig.from_toml(dumps(tuned.to_dict(), trim_float_noise=True)).to_dict())
+    except Exception:  # noqa: BLE001 - any failure to read it back: write the rig whole
+        same = False
+    return out if same else fallback()
+
+
 # --- the likelihood machine ---------------------------------------------------------------
 class _Problem:
     """Logs read once; each evaluation decodes and fuses them with a rig carrying the
@@ -1053,14 +1121,20 @@ def _main(args) -> int:
         # said on stdout first thing, and here too: a script that keeps only the rig
         # must not miss it
         print(f"rangefuse tune: warning: {res.worse_against_truth}", file=sys.stderr)
+    if args.rig:
+        source = Rig.load_with_text(args.rig)[1]
+    else:
+        with open_log(args.logs[0]) as log:
+            source = log.rig_toml
+    head = [f"# {_TUNED_MARK} ({res.objective}) from "
+            f"{', '.join(os.path.basename(p) for p in args.logs)}:"]
+    head += [f"#   {p.name}: {p0.value:.4g} -> {p.value:.4g}"
+             for p0, p in zip(res.initial, res.params)]
+    if res.worse_against_truth:
+        head.append(f"# WARNING: {res.worse_against_truth}")  # the rig carries it along
     with atomic_output(args.out, inputs=inputs) as tmp:
         with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(f"# tuned by rangefuse tune ({res.objective}) from "
-                     f"{', '.join(os.path.basename(p) for p in args.logs)}\n")
-            if res.worse_against_truth:
-                # the rig carries the warning with it
-                fh.write(f"# WARNING: {res.worse_against_truth}\n")
-            fh.write(dumps(res.rig.to_dict(), trim_float_noise=True))
+            fh.write(rig_text_with(source, res.rig, res.params, head))
     print(f"tuned rig: {args.out}")
     if args.plot:
         res.plot(args.plot)

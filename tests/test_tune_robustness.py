@@ -239,3 +239,45 @@ def test_tune_checks_its_arguments_at_the_door(kw, field):
     with pytest.raises(InputError) as exc:
         tune(SHELF, **kw)
     assert exc.value.field == field
+
+
+def _written(rig):
+    from fusion._toml import dumps
+    return dumps(rig.to_dict())
+
+
+def test_the_tuned_rig_keeps_the_users_file_and_changes_only_the_tuned_values():
+    # A rig file is the user's document: its comments, order and spelling stay; only the
+    # tuned keys change (or are added where the key was left to its default), and the
+    # text reads back as exactly the tuned rig.
+    from replay.tune import Parameter, apply, rig_text_with
+    src = os.path.join(DATA, "tuning-run.rig.toml")
+    text = open(src).read()
+    rig = Rig.from_toml(text)
+    params = [Parameter("estimator.accel_psd", 1.5e-5),           # no [estimator] table
+              Parameter("sensor.echo_a.sigma_m", 0.0029),          # a key on its own line
+              Parameter("sensor.ir_front.latency_s", 0.004)]       # a key left to default
+    tuned = apply(rig, params)
+    out = rig_text_with(text, tuned, params, ["# tuned by rangefuse tune (test):"])
+    assert _written(Rig.from_toml(out)) == _written(tuned)
+    old, new = text.splitlines(), out.splitlines()
+    assert [ln for ln in old if ln.lstrip().startswith("#")] == \
+        [ln for ln in new[1:] if ln.lstrip().startswith("#")]
+    changed = [ln for ln in new[1:] if ln not in old]
+    assert sorted(ln.split("=")[0].strip() for ln in changed if "=" in ln) == \
+        ["accel_psd", "latency_s", "sigma_m"]
+    # tuning the tuned file again replaces the head instead of piling heads up
+    again = rig_text_with(out, tuned, params, ["# tuned by rangefuse tune (again):"])
+    assert again.count("# tuned by rangefuse tune") == 1
+
+
+def test_a_rig_text_that_cannot_be_edited_is_written_whole():
+    from replay.tune import Parameter, apply, rig_text_with
+    rig = Rig.from_toml(open(os.path.join(DATA, "tuning-run.rig.toml")).read())
+    params = [Parameter("sensor.echo_a.sigma_m", 0.0029)]
+    tuned = apply(rig, params)
+    # a text that does not describe the sensor (here: none at all) cannot be edited
+    for text in ("", "name = 'other'\n"):
+        out = rig_text_with(text, tuned, params, ["# head"])
+        assert out.startswith("# head\n")
+        assert _written(Rig.from_toml(out)) == _written(tuned)
