@@ -157,7 +157,7 @@ def read_pairs(path):
                         raise InputError(f"{shown} is not a number; expected {name} as a decimal "
                                          "number", file=path, field=name, row=row) from None
                 lo, hi = _VOLTS_PLAUSIBLE
-                if kind == "volts" and not lo <= got[1] <= hi:
+                if kind == "volts" and (got[1] < lo or got[1] > hi):  # NaN: the fit says
                     raise InputError(f"{got[1]:g} V is no ranger output; expected volts between "
                                      f"{lo:g} and {hi:g}", file=path, field="volts", row=row)
                 ranges.append(got[0])
