@@ -20,6 +20,7 @@ from fusion.errors import InputError
 
 __all__ = ["atomic_output", "write_atomic", "same_file", "refuse_overwrite", "check_output",
            "check_outputs", "command_outputs", "make_folder", "staged", "Output",
+           "note_interrupt", "last_interrupt", "outputs_committed",
            "FIGURE_SUFFIXES"]
 
 # Figure formats matplotlib writes without extra packages.
@@ -63,14 +64,36 @@ class _Plan:
     def commit(self):
         """Rename every complete output into place, in one step that Ctrl-C or SIGTERM
         do not cut in two (they wait until it is done)."""
+        global _committed
         with _signals_held():
             for tmp, path in list(self.ready.values()):
                 os.replace(tmp, path)
                 del self.temps[tmp]
+            _committed = True  # before the held signals arrive: the outputs are in place
         self._remove_temps()  # none is left unless a caller swallowed a failed write
 
 
 _plan: _Plan | None = None
+_interrupt = None  # the signal noted by note_interrupt while a command runs
+_committed = False  # whether the running (or last) command's outputs were put in place
+
+
+def note_interrupt(signum) -> None:
+    """Note that the running command was interrupted (signal number): it will keep none
+    of its outputs, even if the KeyboardInterrupt raised for it was swallowed."""
+    global _interrupt
+    _interrupt = signum
+
+
+def last_interrupt():
+    """The signal noted for the running (or last) command, or None."""
+    return _interrupt
+
+
+def outputs_committed() -> bool:
+    """Whether the running (or last) command's outputs were all put in place (an
+    interrupt held off during the renames arrives after them)."""
+    return _committed
 
 
 @contextlib.contextmanager
@@ -91,11 +114,15 @@ def _signals_held():
 def command_outputs():
     """Run one command: its outputs are renamed into place together when the block ends
     normally, and none is kept if it ends by an exception (an error, Ctrl-C, SIGTERM)."""
-    global _plan
+    global _plan, _interrupt, _committed
     outer, plan = _plan, _Plan()
-    _plan = plan
+    _plan, _interrupt, _committed = plan, None, False
     try:
         yield plan
+        if _interrupt is not None:
+            # interrupted, though the KeyboardInterrupt was swallowed on its way (inside
+            # a callback from compiled code): the command did not finish as asked
+            raise KeyboardInterrupt()
     except BaseException:
         _plan = outer
         plan.discard()
@@ -104,7 +131,8 @@ def command_outputs():
     try:
         plan.commit()
     except BaseException:
-        plan.discard()
+        if not _committed:
+            plan.discard()
         raise
 
 
@@ -198,6 +226,12 @@ def check_output(path, inputs=(), field=None, suffixes=None, _new_folders=()):
                          f"of {', '.join(suffixes)}", file=path, field=field)
     if os.path.isdir(path):
         raise InputError("is a folder; expected a file name", file=path, field=field)
+    if os.path.exists(path) and not os.path.isfile(path):
+        # a device or a pipe (/dev/null): the file is written beside it and renamed over
+        # it, which would put an ordinary file in the device's place
+        raise InputError("is a device or a pipe, not a regular file; expected a file name "
+                         "(outputs are written to a temporary file and renamed into place)",
+                         file=path, field=field)
     folder = os.path.dirname(os.path.abspath(path)) or "."
     if _key(folder) not in _new_folders:
         _check_folder(folder, path, field)

@@ -54,25 +54,42 @@ class _Formatter(argparse.RawDescriptionHelpFormatter):
     pass
 
 
+class _Parser(argparse.ArgumentParser):
+    """A command-line mistake is one line, like every other input error: what is wrong
+    and where to read the options, exit status 2 (argparse prints the usage as well)."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (see `{self.prog} --help`)\n")
+
+
 class Terminated(KeyboardInterrupt):
     """SIGTERM, raised where the command is so that it stops as Ctrl-C stops it."""
 
 
-def _raise_terminated(signum, frame):
-    raise Terminated()
-
-
 @contextlib.contextmanager
-def _sigterm_as_interrupt():
+def _signals_as_interrupts():
+    """Ctrl-C and SIGTERM stop the command as KeyboardInterrupt (`Terminated` for
+    SIGTERM), and each is also noted with `replay._io.note_interrupt`: an interrupt that
+    lands inside a callback from compiled code is swallowed there ("Exception ignored
+    ..."), and the note still keeps the command from putting its outputs in place."""
+    def handler(signum, frame):
+        _io.note_interrupt(signum)
+        raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
+
+    old = {}
     try:
-        old = signal.signal(signal.SIGTERM, _raise_terminated)
-    except (ValueError, OSError, AttributeError):  # not the main thread: leave it be
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            old[sig] = signal.signal(sig, handler)
+    except (ValueError, OSError, AttributeError):  # not the main thread: leave them be
+        for sig, h in old.items():
+            signal.signal(sig, h)
         yield
         return
     try:
         yield
     finally:
-        signal.signal(signal.SIGTERM, old)
+        for sig, h in old.items():
+            signal.signal(sig, h)
 
 
 class _Stdout:
@@ -166,7 +183,7 @@ def _check_numbers(command_parser, args):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="rangefuse", allow_abbrev=False,
         description=("Fuse IR triangulation rangers and ultrasonic echo rangers into one range "
                      "with an honest uncertainty; replay, tune and plot logged runs."),
@@ -217,7 +234,7 @@ def main(argv=None) -> int:
         return 2
     command_parser = parser.command_parsers[args.command]
     try:
-        with _sigterm_as_interrupt(), _reader_may_leave(), _io.command_outputs():
+        with _signals_as_interrupts(), _reader_may_leave(), _io.command_outputs():
             # every number and every output is checked before any work
             _check_numbers(command_parser, args)
             _io.check_outputs(*_outputs_and_inputs(command_parser, args))
@@ -242,9 +259,11 @@ def main(argv=None) -> int:
               "output was kept", file=sys.stderr)
         return 2
     except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (Terminated)
-        what, code = ("terminated", 128 + signal.SIGTERM) if isinstance(exc, Terminated) \
-            else ("interrupted", 130)
-        print(f"rangefuse {args.command}: {what}; no partial output was kept", file=sys.stderr)
+        term = isinstance(exc, Terminated) or _io.last_interrupt() == signal.SIGTERM
+        what, code = ("terminated", 128 + signal.SIGTERM) if term else ("interrupted", 130)
+        kept = "after its outputs were written" if _io.outputs_committed() else \
+            "no partial output was kept"
+        print(f"rangefuse {args.command}: {what}; {kept}", file=sys.stderr)
         return code
 
 

@@ -12,6 +12,7 @@ import csv
 import os
 import re
 import signal
+import stat
 import sys
 
 try:
@@ -216,6 +217,32 @@ def test_ctrl_c_after_the_track_file_is_written_keeps_no_output(folder, capsys, 
     assert _listing(folder) == before  # nor any hidden temporary file
 
 
+def test_an_interrupt_swallowed_on_its_way_still_keeps_no_output(folder, capsys, monkeypatch):
+    # A Ctrl-C that arrives inside a callback from compiled code is swallowed there
+    # (Python prints "Exception ignored ..." and goes on); the signal was noted, so the
+    # command still keeps none of its outputs and says it was interrupted.
+    import replay._io as io
+
+    def swallowed(*a, **k):
+        io.note_interrupt(signal.SIGINT)  # what the handler does before raising
+
+    monkeypatch.setattr(plots, "plot_track", swallowed)
+    before = _listing(folder)
+    code, _out, err = _cli(capsys, _replay_all(folder))
+    assert code == 130 and err == ["rangefuse replay: interrupted; no partial output was kept"]
+    assert _listing(folder) == before
+
+
+def test_a_device_or_pipe_is_never_replaced_by_an_output(folder, capsys):
+    # Outputs are renamed into place; over a device or a pipe that would leave an
+    # ordinary file where it stood (as root, over /dev/null). A pipe made here stands in.
+    fifo = folder / "pipe.track.h5"
+    os.mkfifo(fifo)
+    code, _out, err = _cli(capsys, ["replay", folder / "run.h5", "-o", fifo])
+    assert code == 2 and len(err) == 1 and "is a device or a pipe" in err[0], err
+    assert stat.S_ISFIFO(os.stat(fifo).st_mode)
+
+
 class _NotHandled(Exception):
     pass
 
@@ -361,13 +388,15 @@ def test_decisions_csv_holds_every_documented_column_with_loglik(folder, capsys)
 
 @pytest.mark.parametrize("wrong", ["--smoth", "--smoo"])
 def test_a_misspelt_or_shortened_option_is_refused_by_the_command(tmp_path, capsys, wrong):
-    # The command's own usage line is shown (not the top level's), and a shortened option
-    # is not guessed: it could name another option once one is added.
+    # One line, like every input error, naming the command (not the top level) and where
+    # its options are; a shortened option is not guessed: it could name another option
+    # once one is added.
     log = os.path.join(ROOT, "datasets", "shelf-pass.h5")
     out = tmp_path / "x.track.h5"
     with pytest.raises(SystemExit) as exc:
         main(["replay", log, "-o", str(out), wrong])
     assert exc.value.code == 2
-    err = capsys.readouterr().err
-    assert "usage: rangefuse replay" in err and f"unrecognized arguments: {wrong}" in err
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [f"rangefuse replay: error: unrecognized arguments: {wrong} "
+                   "(see `rangefuse replay --help`)"]
     assert not out.exists()
