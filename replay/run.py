@@ -512,7 +512,13 @@ def run(log, rig=None, *, out=None, smooth=False, window_s=None, progress=False,
     -------
     ReplayResult
     """
+    if window_s is not None and not (isinstance(window_s, (int, float)) and
+                                     math.isfinite(window_s) and window_s > 0):
+        raise InputError(f"expected a positive number of seconds, or None for the automatic "
+                         f"window; got {window_s!r}", field="window_s")
     paths = [os.fspath(log)] if isinstance(log, (str, os.PathLike)) else [os.fspath(p) for p in log]
+    if not paths:
+        raise InputError("expected at least one log", field="log")
     if out is None:
         import tempfile
         out = os.path.join(tempfile.mkdtemp(prefix="rangefuse-"),
@@ -928,6 +934,9 @@ def _main(args) -> int:
     # The outputs were checked by the command line (`outputs`), and are put in place
     # together when the command ends (replay._io.command_outputs).
     from ._io import make_folder
+    if args.window is not None and not args.window > 0:
+        raise InputError(f"expected a positive number of seconds, got {args.window:g}",
+                         field="--window")
     extra = [args.rig] if args.rig else []
     plan = _targets(args)
     if len(plan) > 1:

@@ -19,6 +19,9 @@ def _num(x) -> str:
     return f"{x:g}" if isinstance(x, (int, float)) else repr(x)
 
 
+_MARGIN_MAX = 10.0
+
+
 def firing_plan(rig: Rig, temp_min_c: float = -10.0, margin: float = 1.1):
     """A round-robin plan for the rig's echo rangers.
 
@@ -33,7 +36,8 @@ def firing_plan(rig: Rig, temp_min_c: float = -10.0, margin: float = 1.1):
     - ``rate_hz``: readings per second of each unit (``1 / round_s``);
     - ``order``: ``(name, offset_s)`` of each unit within the round.
 
-    Raises `InputError` for a `temp_min_c` outside -60..90 degC or a `margin` below 1.
+    Raises `InputError` for a `temp_min_c` outside -60..90 degC or a `margin` outside
+    1..10.
     """
     # The air temperatures the speed-of-sound model is used over (fusion.screening takes
     # samples outside them for failed ones); a margin below 1 would let a late echo
@@ -45,6 +49,11 @@ def firing_plan(rig: Rig, temp_min_c: float = -10.0, margin: float = 1.1):
         raise InputError(f"expected a factor >= 1 (1.1 leaves 10 % for late echoes), got "
                          f"{_num(margin)}; below 1 the next unit fires before an echo can return",
                          field="--margin")
+    if margin > _MARGIN_MAX:
+        # a slot ten times the longest echo's round trip is already slower than any rig
+        # needs: a larger factor is a slip (an extra digit), not a wish
+        raise InputError(f"expected a factor of at most {_MARGIN_MAX:g} (1.1 leaves 10 % for "
+                         f"late echoes), got {_num(margin)}", field="--margin")
     order = list(rig.schedule.order) or list(rig.echo_names)
     if not order:
         return {"order": [], "slot_s": 0.0, "round_s": 0.0, "rate_hz": 0.0}

@@ -155,6 +155,7 @@ def test_every_output_is_written_when_the_reader_leaves(folder, monkeypatch):
     (["--temp-min", "inf"], "--temp-min"), (["--temp-min", "91"], "--temp-min"),
     (["--margin", "0"], "--margin"), (["--margin", "nan"], "--margin"),
     (["--margin", "-1"], "--margin"), (["--margin", "0.5"], "--margin"),
+    (["--margin", "1e9"], "--margin"),   # a slip: a cycle of 28 million seconds
 ])
 def test_schedule_refuses_numbers_that_give_no_safe_cycle(capsys, extra, option):
     code, out, err = _cli(capsys, ["schedule", SHELF_RIG] + extra)
@@ -400,3 +401,18 @@ def test_a_misspelt_or_shortened_option_is_refused_by_the_command(tmp_path, caps
     assert err == [f"rangefuse replay: error: unrecognized arguments: {wrong} "
                    "(see `rangefuse replay --help`)"]
     assert not out.exists()
+
+
+@pytest.mark.parametrize("window", [0, -1.0, float("nan"), "10"])
+def test_a_replay_window_must_be_a_positive_number_of_seconds(folder, window):
+    # Zero had been taken as "automatic", silently (docs: seconds of log per step).
+    with pytest.raises(InputError) as exc:
+        replay_run.run(str(folder / "run.h5"), out=str(folder / "w.track.h5"), window_s=window)
+    assert exc.value.field == "window_s"
+    assert not (folder / "w.track.h5").exists()
+
+
+def test_replay_of_no_log_is_refused():
+    with pytest.raises(InputError) as exc:
+        replay_run.run([])
+    assert exc.value.field == "log"
