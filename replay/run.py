@@ -883,7 +883,7 @@ def register(sub):
                    help="also write OUT.track.csv and OUT.decisions.csv")
     p.add_argument("--window", type=float, default=None, metavar="S",
                    help="seconds of log read per step (default: about 32 768 readings)")
-    p.add_argument("--quiet", action="store_true", help="print no summary")
+    p.add_argument("-q", "--quiet", action="store_true", help="print no summary")
     p.set_defaults(func=_main)
 
 
