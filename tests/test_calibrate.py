@@ -254,3 +254,14 @@ def test_a_span_from_the_command_line_is_named_by_its_option(pairs_csv, tmp_path
     line = _one_error_line(capsys)
     assert "--max-range" in line and "0.5 and 0.2" in line
     assert not out.exists()
+
+
+def test_a_span_past_the_pairs_is_said_to_be_extrapolated():
+    # Readings inside the valid span are trusted; past the farthest pair the curve is the
+    # model's guess, so a span stretched far beyond it is reported (no source: what a
+    # calibration is).
+    r, v = _pairs()
+    far = fit_report(r, v, max_range_m=8.0)
+    assert any("extrapolated" in w and "0.8 m" in w for w in far.warnings)
+    near = fit_report(r, v)
+    assert not any("past" in w and "extrapolated" in w for w in near.warnings)

@@ -1218,6 +1218,11 @@ def _fit_table(r, v, u, counts, vmean, span, scale):
     return FitCandidate(TABLE, curve, k, rss, sigma, aic, aicc, fitted, notes=tuple(notes))
 
 
+# A span end past the farthest pair by more than this factor is reported as extrapolated
+# (a design figure: a few per cent past the last pair is the usual rounding of a span).
+_SPAN_STRETCH = 1.1
+
+
 def fit_report(range_m, volts, model="auto", *, min_range_m=None, max_range_m=None, where="",
                rows=None) -> CurveFit:
     """Fit an IR triangulation curve to calibration pairs and report on it.
@@ -1321,6 +1326,12 @@ def fit_report(range_m, volts, model="auto", *, min_range_m=None, max_range_m=No
             notes.append(f"the voltages are not monotone on each side of the peak at "
                          f"{_describe_rows(bad_rows, label)}; the table pools them into their "
                          "mean so each side can be inverted")
+    reach = float(u[-1])
+    if hi > _SPAN_STRETCH * reach:
+        # the span is where readings are trusted; past the pairs it is the model's guess
+        notes.append(f"the valid span reaches {hi:.4g} m, {hi / reach:.3g} times the farthest "
+                     f"pair at {reach:.4g} m: ranges past {reach:.4g} m are extrapolated, not "
+                     "calibrated; add pairs out to the span's end")
     if len(u) < 2 * MIN_DISTINCT_RANGES and chosen.model == SATURATING_INVERSE:
         notes.append(f"only {len(u)} distinct ranges: the parameter uncertainties are rough; "
                      "calibrate at 10 or more ranges across the span")
