@@ -1225,15 +1225,19 @@ def _fused_sel(tf, dec, a, b, lo_t, hi_t, gated_code=None):
 # --------------------------------------------------------------------------------------
 # Tuner convergence
 # --------------------------------------------------------------------------------------
-def plot_convergence(history, out=None):
-    """The tuner's convergence: log-likelihood and parameters per iteration.
+def plot_convergence(history, out=None, objective="innovations"):
+    """The tuner's convergence: the objective and the parameters per iteration.
 
     Parameters
     ----------
     history : list of dict
-        ``{"iteration": int, "loglik": float, "params": {name: value}}`` per iteration.
+        ``{"iteration": int, "loglik": float, "params": {name: value}}`` per iteration;
+        ``loglik`` is the objective the tuner maximised.
     out : str or path-like, optional
         Figure file to write (format from its suffix).
+    objective : {"innovations", "truth"}
+        What ``loglik`` is, for the top panel's title and label: the innovations
+        log-likelihood, or the track's log score against truth.
 
     Returns
     -------
@@ -1293,8 +1297,12 @@ def plot_convergence(history, out=None):
         ax_l.text(0.99, 0.05, f"best {ll[best]:.6g} at iteration {its[best]}",
                   transform=ax_l.transAxes, ha="right", va="bottom", fontsize=8.5,
                   bbox=dict(facecolor="white", edgecolor="none", alpha=0.8))
-    ax_l.set_ylabel("log-likelihood (nats)")
-    ax_l.set_title("innovations log-likelihood", fontsize=9.5)
+    # the panel is titled by what it plots: the truth objective maximises a log score
+    # against truth, which is no likelihood of the readings
+    truth = objective == "truth"
+    ax_l.set_ylabel("log score (nats)" if truth else "log-likelihood (nats)")
+    ax_l.set_title("log score against truth" if truth else "innovations log-likelihood",
+                   fontsize=9.5)
     positive = all(np.all(np.asarray(v) > 0) for _, v in params.values())
     units = {name: _param_unit(name) for name in params}
     ends = []
