@@ -19,8 +19,10 @@ DEMO_NOTES = {
         "from the rig's cautious IR noise. Its gain_sigma (3 %) covers the dark bumper the "
         "ranger meets from 85 s to 135 s, whose return is 10 % weaker; counted as white "
         "noise it overstates the IR noise elsewhere (replayed without it, the near zone's "
-        "2-sigma cover falls from 99.5 % to 77 %). `rangefuse tune` estimates the noise "
-        "from a log."),
+        "2-sigma cover falls from 99.5 % to 77 %). The innovations do not see that slow "
+        "bias either: `rangefuse tune` on this log lowers the IR noise and warns that its "
+        "rig covers the truth less (2-sigma cover 96.9 % to 83.5 %); with --objective "
+        "truth it fits the noise to the truth (RMSE 3.9 mm to 2.5 mm, cover 92.2 %)."),
     "shelf-pass": (
         "Reading this run: a person (24 s) and a trolley (70 s) step into the front beam "
         "and leave it; the track re-acquires 30-50 ms after each steps in (when the IR "
