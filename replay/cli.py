@@ -143,6 +143,16 @@ def _option_name(action) -> str:
     return max(action.option_strings, key=len) if action.option_strings else action.dest
 
 
+def _option_of_argument(command_parser, field):
+    """The option of `command_parser` whose value is the library argument `field`, or None."""
+    if not isinstance(field, str) or field.startswith("-"):
+        return None
+    for a in command_parser._actions:
+        if a.dest == field and a.option_strings:
+            return _option_name(a)
+    return None
+
+
 def _outputs_and_inputs(command_parser, args):
     """The outputs the command will write and the files it reads, from its arguments."""
     actions = [a for a in command_parser._actions if a.dest not in ("help", "version")]
@@ -243,6 +253,11 @@ def main(argv=None) -> int:
     except RangefuseError as exc:
         if args.debug:
             raise
+        # a library argument that this command takes as an option is named as the option
+        # (max_points -> --max-points), so the line says what to change on the command line
+        option = _option_of_argument(command_parser, exc.field)
+        if option:
+            exc.field = option
         print(f"rangefuse {args.command}: error: {exc.one_line()}", file=sys.stderr)
         return 2
     except BrokenPipeError:  # e.g. piped into head: the reader left, nothing is wrong

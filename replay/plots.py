@@ -31,7 +31,7 @@ from fusion import decisions as D
 from fusion.errors import InputError
 
 from . import metrics as M
-from ._io import atomic_output, refuse_overwrite
+from ._io import FIGURE_SUFFIXES, atomic_output, refuse_overwrite
 from . import export as _export
 from .export import TrackFile
 
@@ -335,10 +335,9 @@ def _out_format(out, inputs):
         return None
     out = os.fspath(out)
     ext = os.path.splitext(out)[1].lower().lstrip(".")
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    supported = FigureCanvasAgg.get_supported_filetypes()
-    if ext not in supported:
-        others = ", ".join("." + k for k in sorted(supported) if k not in ("png", "pdf", "svg"))
+    # the same figure formats as every other command's --plot
+    if "." + ext not in FIGURE_SUFFIXES:
+        others = ", ".join(k for k in FIGURE_SUFFIXES if k not in (".png", ".pdf", ".svg"))
         raise InputError(f"cannot tell the figure format from the name {out!r}; expected "
                          f"a suffix such as .png, .pdf or .svg (also {others})", file=out,
                          field="-o")

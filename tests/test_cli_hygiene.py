@@ -416,3 +416,16 @@ def test_replay_of_no_log_is_refused():
     with pytest.raises(InputError) as exc:
         replay_run.run([])
     assert exc.value.field == "log"
+
+
+def test_a_library_argument_is_named_by_its_option_on_the_command_line(folder, capsys):
+    # plot_track refuses max_points=3 naming its argument; the command names its option.
+    track = folder / "run.track.h5"
+    replay_run.run(str(folder / "run.h5"), out=str(track))
+    code, _out, err = _cli(capsys, ["plot", track, "-o", folder / "f.png", "--max-points", "3"])
+    assert code == 2 and err == ["rangefuse plot: error: --max-points: must be at least 16, "
+                                 "got 3"]
+    # and plot takes the figure formats every other command's --plot takes
+    code, _out, err = _cli(capsys, ["plot", track, "-o", folder / "f.gif"])
+    assert code == 2 and "cannot tell the figure format" in err[0]
+    assert not (folder / "f.png").exists() and not (folder / "f.gif").exists()
