@@ -329,6 +329,11 @@ def _figure(size=FIGSIZE_IN):
     return fig
 
 
+def _n(count, noun) -> str:
+    """``"1 reading"``, ``"2,000 readings"``."""
+    return f"{count:,} {noun}" + ("" if count == 1 else "s")
+
+
 def _out_format(out, inputs):
     """The figure format of `out` (from its suffix), checked before any work is done."""
     if out is None:
@@ -836,12 +841,12 @@ def _draw_track(data, dirs):
         cnt = data["counts"][d]
         total = int(cnt.sum())
         nf = int(sum(cnt[i] for i, nm in enumerate(names) if nm in D.NAMES[:D.FIRST_REJECT]))
-        bit = f"{d}: {total:,} readings, {100 * nf / total:.0f} % fused" if total else \
+        bit = f"{d}: {_n(total, 'reading')}, {100 * nf / total:.0f} % fused" if total else \
             f"{d}: no readings"
         if info["errors"] is not None:
             # the replay summary's number: every reading, the track predicted to its time
             bit += (f"; RMSE against truth {1e3 * info['errors']['rmse_m']:.1f} mm over "
-                    f"{info['errors']['n']:,} readings")
+                    f"{_n(info['errors']['n'], 'reading')}")
             if info["errors_smooth"] is not None:
                 bit += f" (smoothed, at track rows: {1e3 * info['errors_smooth']['rmse_m']:.1f} mm)"
         nrej = total - nf
@@ -898,6 +903,9 @@ def _draw_track(data, dirs):
         tx.set_ylabel("air temp. used\n(°C)")
         tx.grid(True, color="#e4e4e4", lw=0.6)
     axes[-1].set_xlabel("time (s)")
+    for ax in axes:
+        # seconds as they are on the log's clock, not as an offset (+1.4999e2) on a short span
+        ax.ticklabel_format(axis="x", style="plain", useOffset=False)
     if all(math.isfinite(x) for x in data["t_range"]):
         axes[-1].set_xlim(*data["t_range"])     # the span asked for, even where it is empty
     fig.align_ylabels(axes)
@@ -934,7 +942,7 @@ def _draw_track(data, dirs):
     thin = (f"\n(display thinned: 1 in {data['stride']} raw readings shown, lines keep their "
             "extremes; zoom in with --from/--to)" if data["stride"] > 1 else "")
     fig.suptitle(f"fused versus raw ranges: {data['title']}{data['range_text']} "
-                 f"({total:,} readings; {data.get('estimator', 'kalman')} estimator){thin}",
+                 f"({_n(total, 'reading')}; {data.get('estimator', 'kalman')} estimator){thin}",
                  fontsize=10.5)
     _footer(fig)
     return fig
@@ -1138,7 +1146,7 @@ def plot_diagnostics(track_path, out=None, direction=None, *, t_range=None,
         lo_b, hi_b = M.nis_bounds(S["n"])
         verdict = M.consistency_verdict(mean, S["n"])
         # the numbers and wording of the replay summary (same readings, same format)
-        ax_n.set_title(f"time-averaged NIS {mean:.3f} over {S['n']:,} readings: {verdict}"
+        ax_n.set_title(f"time-averaged NIS {mean:.3f} over {_n(S['n'], 'reading')}: {verdict}"
                        f"\n(95 % bounds {lo_b:.3f} to {hi_b:.3f})" if S["n"] else
                        "no fused readings\n", fontsize=9)
         if tn.size:
