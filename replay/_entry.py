@@ -20,4 +20,8 @@ def main():
     for sig in (signal.SIGINT, signal.SIGTERM):
         signal.signal(sig, _starting)
     from replay.cli import main as command
-    return command()
+    code = command()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        # started: an interrupt from here on is no longer "while starting"
+        signal.signal(sig, signal.SIG_DFL if sig == signal.SIGTERM else signal.default_int_handler)
+    return code

@@ -20,7 +20,7 @@ from fusion.errors import InputError
 
 __all__ = ["atomic_output", "write_atomic", "same_file", "refuse_overwrite", "check_output",
            "check_outputs", "command_outputs", "make_folder", "staged", "Output",
-           "note_interrupt", "last_interrupt", "outputs_committed",
+           "note_interrupt", "last_interrupt", "outputs_committed", "committing",
            "FIGURE_SUFFIXES"]
 
 # Figure formats matplotlib writes without extra packages.
@@ -64,18 +64,27 @@ class _Plan:
     def commit(self):
         """Rename every complete output into place, in one step that Ctrl-C or SIGTERM
         do not cut in two (they wait until it is done)."""
-        global _committed
-        with _signals_held():
-            for tmp, path in list(self.ready.values()):
-                os.replace(tmp, path)
-                del self.temps[tmp]
-            _committed = True  # before the held signals arrive: the outputs are in place
+        global _committed, _committing
+        _committing = True  # a handler that runs now only notes its signal (note_interrupt)
+        try:
+            with _signals_held():
+                for tmp, path in list(self.ready.values()):
+                    os.replace(tmp, path)
+                    del self.temps[tmp]
+                _committed = True  # before a held signal arrives: the outputs are in place
+        finally:
+            _committing = False
+        if _interrupt is not None:
+            # noted during the renames (taken by another thread, whose mask was not held):
+            # raised now that every output is in place
+            raise KeyboardInterrupt()
         self._remove_temps()  # none is left unless a caller swallowed a failed write
 
 
 _plan: _Plan | None = None
 _interrupt = None  # the signal noted by note_interrupt while a command runs
 _committed = False  # whether the running (or last) command's outputs were put in place
+_committing = False  # while the outputs are being renamed into place
 
 
 def note_interrupt(signum) -> None:
@@ -83,6 +92,15 @@ def note_interrupt(signum) -> None:
     of its outputs, even if the KeyboardInterrupt raised for it was swallowed."""
     global _interrupt
     _interrupt = signum
+
+
+def committing() -> bool:
+    """Whether the running command is renaming its outputs into place: a signal handler
+    then only notes the signal (`note_interrupt`), and `command_outputs` raises it when
+    the renames are done (a signal mask holds the main thread only: numpy's worker
+    threads may take the signal, and Python runs the handler in the main thread between
+    two renames)."""
+    return _committing
 
 
 def last_interrupt():

@@ -16,7 +16,7 @@ import numpy as np
 
 from fusion import __version__
 from fusion._toml import dumps
-from fusion.errors import InputError, RangefuseError
+from fusion.errors import InputError
 from fusion.sensors.adc import adc_quantisation_sigma_v, counts_to_volts
 from fusion.sensors.triangulation import SATURATING_INVERSE, TABLE, fit_report
 
@@ -51,9 +51,6 @@ USAGE_NOTE = ("to use it: copy its [curve] table into the rig file below the IR 
               "[[sensor]] entry,\n  renamed [sensor.curve] (docs/rig.md, \"Curves\"); "
               "[calibration] only records the fit")
 
-
-# the options that set a curve's span, by the curve key they set
-_SPAN_OPTIONS = {"min_range_m": "--min-range", "max_range_m": "--max-range"}
 
 # An IR triangulation ranger's analog output stays inside its supply (logic supplies of
 # 3.3-5 V; common practice, no source): a pair far outside is a typing or unit slip.
@@ -279,16 +276,9 @@ def run(args) -> int:
         if kind == "volts":
             adc_note += "; the volts column was used as it is"
 
-    try:
-        result = fit_report(range_m, volts, args.model, min_range_m=args.min_range_m,
-                            max_range_m=args.max_range_m, where=src, rows=rows)
-    except RangefuseError as exc:
-        option = _SPAN_OPTIONS.get(exc.field)
-        given = option and getattr(args, exc.field, None) is not None
-        if not given:
-            raise
-        # the span came from the command line: name the option, not the curve's key
-        raise InputError(exc.message, field=option) from None
+    # (a span given on the command line is named by its option by replay.cli)
+    result = fit_report(range_m, volts, args.model, min_range_m=args.min_range_m,
+                        max_range_m=args.max_range_m, where=src, rows=rows)
     # Everything that can fail is done before the first file is written.
     document = _curve_document(result, src)
     figure = _plot_bytes(result, fmt, f"{os.path.basename(src)}: {result.model}") if plot else None

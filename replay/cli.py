@@ -74,6 +74,8 @@ def _signals_as_interrupts():
     ..."), and the note still keeps the command from putting its outputs in place."""
     def handler(signum, frame):
         _io.note_interrupt(signum)
+        if _io.committing():
+            return  # raised once the outputs are all in place, not between two of them
         raise Terminated() if signum == signal.SIGTERM else KeyboardInterrupt()
 
     old = {}
@@ -143,12 +145,14 @@ def _option_name(action) -> str:
     return max(action.option_strings, key=len) if action.option_strings else action.dest
 
 
-def _option_of_argument(command_parser, field):
-    """The option of `command_parser` whose value is the library argument `field`, or None."""
+def _option_of_argument(command_parser, args, field):
+    """The option of `command_parser` whose value is the library argument `field`, when
+    the command line gave it (a value the library chose itself is not the option's
+    fault), or None."""
     if not isinstance(field, str) or field.startswith("-"):
         return None
     for a in command_parser._actions:
-        if a.dest == field and a.option_strings:
+        if a.dest == field and a.option_strings and getattr(args, a.dest, None) != a.default:
             return _option_name(a)
     return None
 
@@ -255,7 +259,7 @@ def main(argv=None) -> int:
             raise
         # a library argument that this command takes as an option is named as the option
         # (max_points -> --max-points), so the line says what to change on the command line
-        option = _option_of_argument(command_parser, exc.field)
+        option = _option_of_argument(command_parser, args, exc.field)
         if option:
             exc.field = option
         print(f"rangefuse {args.command}: error: {exc.one_line()}", file=sys.stderr)

@@ -265,3 +265,12 @@ def test_a_span_past_the_pairs_is_said_to_be_extrapolated():
     assert any("extrapolated" in w and "0.8 m" in w for w in far.warnings)
     near = fit_report(r, v)
     assert not any("past" in w and "extrapolated" in w for w in near.warnings)
+
+
+def test_only_an_option_given_is_blamed(pairs_csv, tmp_path, capsys):
+    # --min-range alone past the farthest pair: the span's end came from the pairs, so
+    # the line names the option the user gave, not one they did not.
+    out = tmp_path / "c.toml"
+    assert main(["calibrate", str(pairs_csv), "-o", str(out), "--min-range", "5"]) == 2
+    line = _one_error_line(capsys)
+    assert "--min-range" in line and "--max-range" not in line

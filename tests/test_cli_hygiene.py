@@ -429,3 +429,27 @@ def test_a_library_argument_is_named_by_its_option_on_the_command_line(folder, c
     code, _out, err = _cli(capsys, ["plot", track, "-o", folder / "f.gif"])
     assert code == 2 and "cannot tell the figure format" in err[0]
     assert not (folder / "f.png").exists() and not (folder / "f.gif").exists()
+
+
+def test_an_interrupt_between_two_renames_waits_until_all_outputs_are_in_place(
+        folder, capsys, monkeypatch):
+    # A signal mask holds the main thread only: a Ctrl-C taken by one of numpy's worker
+    # threads still runs the handler in the main thread, here between the first rename
+    # and the next. The outputs must still appear together, and the line must say so.
+    import replay._io as io
+    real = os.replace
+    calls = []
+
+    def replace_then_ctrl_c(src, dst):
+        real(src, dst)
+        calls.append(dst)
+        if len(calls) == 1:
+            signal.getsignal(signal.SIGINT)(signal.SIGINT, None)  # the handler runs now
+
+    monkeypatch.setattr(io.os, "replace", replace_then_ctrl_c)
+    code, _out, err = _cli(capsys, _replay_all(folder))
+    assert len(calls) == 4  # track file, two CSV files, figure
+    assert code == 130 and err == ["rangefuse replay: interrupted; after its outputs were "
+                                   "written"]
+    assert _listing(folder) == ["big.decisions.csv", "big.png", "big.track.csv",
+                                "big.track.h5", "run.h5"]

@@ -1292,9 +1292,11 @@ def fit_report(range_m, volts, model="auto", *, min_range_m=None, max_range_m=No
     lo = float(u[0]) if min_range_m is None else float(min_range_m)
     hi = float(u[-1]) if max_range_m is None else float(max_range_m)
     if not (math.isfinite(lo) and math.isfinite(hi) and 0.0 <= lo < hi):
+        # the end the caller set is the one to change (the other came from the pairs)
+        blame_min = not (math.isfinite(lo) and lo >= 0.0) or \
+            (max_range_m is None and min_range_m is not None)
         raise InputError(f"the valid span must satisfy 0 <= min < max metres (got {lo} and {hi})",
-                         field="min_range_m" if not (math.isfinite(lo) and lo >= 0.0)
-                         else "max_range_m")
+                         field="min_range_m" if blame_min else "max_range_m")
 
     cands = (_fit_saturating_inverse(r, v, (peak_r, peak_v), (lo, hi), far_only, scale),
              _fit_table(r, v, u, counts, vmean, (lo, hi), scale))
