@@ -301,12 +301,19 @@ def rig_text_with(text, tuned: Rig, params, head=()) -> str:
 
     if not text or not text.strip():
         return fallback()
-    lines = text.splitlines()
-    if lines and lines[0].startswith(f"# {_TUNED_MARK}"):  # a previous tuning's head
+    # lines as the file has them: "\n" only (a comment may hold other line separators),
+    # and a file written with CRLF is given back with CRLF
+    eol = "\r\n" if "\r\n" in text else "\n"
+    lines = text.replace("\r\n", "\n").split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()
+    if lines and lines[0].startswith(f"# {_TUNED_MARK}"):  # a previous tuning's head ...
         lines.pop(0)
-        while lines and (lines[0].startswith("#   ") or lines[0].startswith("# WARNING:")):
+        change = re.compile(r"#   \S+: \S+ -> \S+$")  # ... its change lines, and no other
+        while lines and (change.match(lines[0]) or lines[0].startswith("# WARNING:")):
             lines.pop(0)
     header = re.compile(r"\s*\[")
+    sensor_header = re.compile(r"\s*\[\[\s*sensor\s*\]\]")
     for p in params:
         parts = p.name.split(".")
         key, value = parts[-1], _float(float(p.value), trim=True)
@@ -319,12 +326,17 @@ def rig_text_with(text, tuned: Rig, params, head=()) -> str:
         elif parts[0] == "sensor":
             name = ".".join(parts[1:-1])
             named = re.compile(r"\s*name\s*=\s*[\"']" + re.escape(name) + r"[\"']\s*(#.*)?$")
-            hit = next((i for i, ln in enumerate(lines) if named.match(ln)), None)
+            hit = None
+            for i, ln in enumerate(lines):
+                if named.match(ln):
+                    top = i
+                    while top > 0 and not header.match(lines[top]):
+                        top -= 1
+                    if sensor_header.match(lines[top]):  # a sensor's name, not a direction's
+                        hit, lo = i, top
+                        break
             if hit is None:
                 return fallback()
-            lo = hit
-            while lo > 0 and not header.match(lines[lo]):
-                lo -= 1
             anchor = hit
         else:
             return fallback()
@@ -336,7 +348,7 @@ def rig_text_with(text, tuned: Rig, params, head=()) -> str:
         else:
             m = line_of_key.match(lines[at])
             lines[at] = m.group(1) + value + (m.group(3) or "")
-    out = "\n".join(list(head) + lines) + "\n"
+    out = eol.join(list(head) + lines) + eol
     try:
         # compared as written out (a NaN, an unset power-up air, is not equal to itself)
         same = dumps(Rig.from_toml(out).to_dict()) == \

@@ -461,3 +461,25 @@ def test_truth_fit_of_sensor_noise_alone_is_scored_before_it_is_written(monkeypa
     assert written == {n: res.history[-1]["params"][n] for n in names}
     if written != fits[0]:
         assert "scored highest against truth and is the one written" in res.summary()
+
+
+def test_the_tuned_rig_text_keeps_line_ends_and_edits_only_a_sensors_block():
+    # A rig whose direction is named like a sensor (the direction comes first in the
+    # file), written with CRLF line ends, with a note of the user's under an old tuning
+    # head: the sensor's own block is edited, the line ends and the note stay.
+    from replay.tune import Parameter, apply, rig_text_with
+    text = open(os.path.join(DATA, "tuning-run.rig.toml")).read()
+    text = text.replace('name = "front"', 'name = "echo_a"').replace(
+        'direction = "front"', 'direction = "echo_a"')
+    text = "# tuned by rangefuse tune (before):\n#   my own note\n" + text
+    crlf = text.replace("\n", "\r\n")
+    rig = Rig.from_toml(crlf)
+    params = [Parameter("sensor.echo_a.sigma_m", 0.0029)]
+    tuned = apply(rig, params)
+    out = rig_text_with(crlf, tuned, params, ["# tuned by rangefuse tune (now):"])
+    assert _written(Rig.from_toml(out)) == _written(tuned)
+    assert out.count("\r\n") == out.count("\n")        # every line end is CRLF
+    assert "#   my own note" in out and "(before)" not in out
+    old = [ln for ln in crlf.split("\r\n")]
+    changed = [ln for ln in out.split("\r\n") if ln not in old]
+    assert changed == ["# tuned by rangefuse tune (now):", "sigma_m = 0.0029"]
