@@ -162,11 +162,13 @@ def _key(path) -> str:
 
 
 def _option(path, field):
+    """The name an error about output `path` gives: the caller's `field`, else the
+    option that named it in the running command, else the library's argument ``out``."""
     if field is not None:
         return field
     if _plan is not None:
         return _plan.options.get(_key(path), "-o")
-    return "-o"
+    return "out"
 
 
 def staged(path) -> str:
@@ -232,6 +234,11 @@ def _check_folder(folder, path, field, will_be_made=False):
     os.remove(probe)
 
 
+# bytes the temporary file's name adds to the output's: "." + name + "." + 8 random
+# characters (tempfile) + ".tmp"
+_TEMP_EXTRA = 1 + 1 + 8 + 4
+
+
 def check_output(path, inputs=(), field=None, suffixes=None, _new_folders=()):
     """Refuse an output before any work is done: one of the inputs, a folder that does
     not exist or cannot be written, or (with `suffixes`) a name whose ending says no
@@ -251,6 +258,16 @@ def check_output(path, inputs=(), field=None, suffixes=None, _new_folders=()):
                          "(outputs are written to a temporary file and renamed into place)",
                          file=path, field=field)
     folder = os.path.dirname(os.path.abspath(path)) or "."
+    name = os.path.basename(path)
+    try:
+        longest = os.pathconf(folder if os.path.isdir(folder) else "/", "PC_NAME_MAX")
+    except (OSError, ValueError, AttributeError):
+        longest = 255
+    if len(os.fsencode(name)) + _TEMP_EXTRA > longest:
+        # the temporary file beside it is longer than the name: refused now, not after
+        # the work
+        raise InputError(f"the file name is {len(os.fsencode(name))} bytes long; expected at "
+                         f"most {longest - _TEMP_EXTRA} here", file=path, field=field)
     if _key(folder) not in _new_folders:
         _check_folder(folder, path, field)
     return folder

@@ -345,7 +345,7 @@ def _out_format(out, inputs):
         others = ", ".join(k for k in FIGURE_SUFFIXES if k not in (".png", ".pdf", ".svg"))
         raise InputError(f"cannot tell the figure format from the name {out!r}; expected "
                          f"a suffix such as .png, .pdf or .svg (also {others})", file=out,
-                         field="-o")
+                         field="out")
     refuse_overwrite(out, inputs)
     return ext
 

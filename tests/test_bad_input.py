@@ -523,7 +523,7 @@ def test_output_path_equal_to_an_input(tmp_path, capsys, good):
     assert open(good, "rb").read() == before
     with pytest.raises(InputError) as exc:
         replay(good, out=good)
-    assert exc.value.field == "-o"
+    assert exc.value.field == "out"  # the library names its argument, the command its option
 
 
 def test_folder_that_does_not_exist(tmp_path, capsys, good):

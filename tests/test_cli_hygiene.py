@@ -453,3 +453,12 @@ def test_an_interrupt_between_two_renames_waits_until_all_outputs_are_in_place(
                                    "written"]
     assert _listing(folder) == ["big.decisions.csv", "big.png", "big.track.csv",
                                 "big.track.h5", "run.h5"]
+
+
+def test_an_output_name_too_long_for_its_temporary_file_is_refused_before_work(folder, capsys):
+    # The file is written beside its target under a longer hidden name; a name that fits
+    # the folder but leaves that one too long used to fail only after the replay.
+    long = folder / ("a" * 245 + ".h5")
+    code, _out, err = _cli(capsys, ["replay", folder / "run.h5", "-o", long])
+    assert code == 2 and len(err) == 1 and "the file name is 248 bytes long" in err[0], err
+    assert _listing(folder) == ["run.h5"]
