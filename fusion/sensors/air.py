@@ -17,6 +17,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["speed_of_sound", "echo_range", "echo_time", "range_per_kelvin",
+           "speed_slope_per_kelvin",
            "GAMMA_AIR", "MOLAR_MASS_AIR", "GAS_CONSTANT", "STANDARD_PRESSURE_PA"]
 
 GAMMA_AIR = 1.4
@@ -108,21 +109,25 @@ def echo_time(range_m, temp_c, relative_humidity=0.0):
     return 2.0 * np.asarray(range_m, dtype=float) / speed_of_sound(temp_c, relative_humidity)
 
 
-def range_per_kelvin(range_m, temp_c, relative_humidity=0.0):
-    """d(range)/d(T) in m/K for a fixed echo time: ``range * (dc/dT) / c``.
+def speed_slope_per_kelvin(temp_c, relative_humidity=0.0):
+    """``(dc/dT) / c`` in 1/K: the relative change of the speed of sound per kelvin.
 
-    In dry air this is ``range / (2 (T + 273.15))`` (ideal gas, ``c`` proportional to
-    ``sqrt(T)``). Humid air's speed rises faster with temperature, because its vapour
-    fraction rises too: the slope of `speed_of_sound` with humidity (a central difference
-    over +-0.05 K) is used there; at 20 degC and 50 % it is about 6 % above the dry slope.
+    In dry air ``1 / (2 (T + 273.15))`` (ideal gas, ``c`` proportional to ``sqrt(T)``).
+    Humid air's speed rises faster with temperature, because its vapour fraction rises
+    too: the slope of `speed_of_sound` with humidity (a central difference over +-0.05 K)
+    is used there; at 20 degC and 50 % it is about 7 % above the dry slope.
     """
-    r = np.asarray(range_m, dtype=float)
     t = np.asarray(temp_c, dtype=float)
-    dry = r / (2.0 * (t + 273.15))
+    dry = 1.0 / (2.0 * (t + 273.15))
     h = _check_fraction(relative_humidity)
     if not np.any(h > 0):
         return dry
     step = 0.05
-    c = speed_of_sound(t, h)
     slope = (speed_of_sound(t + step, h) - speed_of_sound(t - step, h)) / (2.0 * step)
-    return np.where(h > 0, r * slope / c, dry)
+    return np.where(h > 0, slope / speed_of_sound(t, h), dry)
+
+
+def range_per_kelvin(range_m, temp_c, relative_humidity=0.0):
+    """d(range)/d(T) in m/K for a fixed echo time: ``range * (dc/dT) / c``
+    (`speed_slope_per_kelvin`): ``range / (2 (T + 273.15))`` in dry air."""
+    return np.asarray(range_m, dtype=float) * speed_slope_per_kelvin(temp_c, relative_humidity)

@@ -48,7 +48,7 @@ import numpy as np
 from .. import decisions as D
 from ..errors import ConfigError, InputError
 from ..measurements import Measurements
-from .air import range_per_kelvin, speed_of_sound
+from .air import speed_of_sound, speed_slope_per_kelvin
 
 __all__ = ["EchoRanger", "OUTPUTS", "COMPENSATIONS", "DEFAULT_FRAME_PATTERN",
            "DEFAULT_FRAME_FORMAT"]
@@ -405,7 +405,7 @@ class EchoRanger:
                 # The unit's own sensor tracks the air; our temperature error does not enter.
                 dr_dt = np.zeros(n)
             else:
-                dr_dt = range_per_kelvin(r_sensor, temp, rh)
+                dr_dt = r_sensor * _slope_by_runs(temp, rh)  # range_per_kelvin
 
             bad |= ~np.isfinite(t)
             unusable = bad | dropout
@@ -543,27 +543,42 @@ def _parse_frame(rx, frame, unit):
 
 
 def _speed_by_runs(temp, rh):
-    """`speed_of_sound` per reading, computed once per run of equal air (the temperature
+    """`speed_of_sound` per reading (see `_per_air_run`)."""
+    return _per_air_run(speed_of_sound, _speed_memo, temp, rh)
+
+
+def _slope_by_runs(temp, rh):
+    """`speed_slope_per_kelvin` per reading (see `_per_air_run`)."""
+    return _per_air_run(speed_slope_per_kelvin, _slope_memo, temp, rh)
+
+
+def _per_air_run(f, memo, temp, rh):
+    """``f(temp, rh)`` per reading, computed once per run of equal air (the temperature
     holds from one air sample to the next, so a window has far fewer runs than readings).
     A few readings (a push) take it from a small memo of recent air: a call on one
     reading costs some forty numpy operations."""
     n = temp.shape[0]
     if n <= 8:
-        return np.array([_speed_memo(float(a), float(h)) for a, h in zip(temp, rh)])
+        return np.array([memo(float(a), float(h)) for a, h in zip(temp, rh)])
     new = np.empty(n, bool)
     new[0] = True
     np.not_equal(temp[1:], temp[:-1], out=new[1:])
     new[1:] |= rh[1:] != rh[:-1]
     starts = np.flatnonzero(new)
     if starts.size <= n // 4:
-        c = np.asarray(speed_of_sound(temp[starts], rh[starts]), dtype=float)
-        return np.repeat(c, np.diff(np.append(starts, n)))
-    return np.asarray(speed_of_sound(temp, rh), dtype=float).reshape(n)
+        v = np.asarray(f(temp[starts], rh[starts]), dtype=float)
+        return np.repeat(v, np.diff(np.append(starts, n)))
+    return np.asarray(f(temp, rh), dtype=float).reshape(n)
 
 
 @functools.lru_cache(maxsize=256)
 def _speed_memo(temp_c, rh):
     return float(np.asarray(speed_of_sound(np.array([temp_c]), np.array([rh])))[0])
+
+
+@functools.lru_cache(maxsize=256)
+def _slope_memo(temp_c, rh):
+    return float(np.asarray(speed_slope_per_kelvin(np.array([temp_c]), np.array([rh])))[0])
 
 
 def _quantise(x, quantum):
