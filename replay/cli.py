@@ -160,7 +160,8 @@ def _option_of_argument(command_parser, args, field):
 def _outputs_and_inputs(command_parser, args):
     """The outputs the command will write and the files it reads, from its arguments."""
     actions = [a for a in command_parser._actions if a.dest not in ("help", "version")]
-    out_dests = {a.dest for a in actions if {"-o", "--plot"} & set(a.option_strings)}
+    out_dests = {a.dest for a in actions
+                 if {"-o", "--out", "--output", "--plot"} & set(a.option_strings)}
     declared = getattr(args, "_outputs", None)
     if declared is not None:
         outputs = list(declared(args))

@@ -92,21 +92,33 @@ def _fill(text, width=92):
     return textwrap.fill(glued, width).replace("\u00a0", " ")
 
 
+def _paths(args):
+    """The demo's track file and figures in the output folder."""
+    return tuple(os.path.join(args.out, args.log + end)
+                 for end in (".track.h5", ".png", ".diagnostics.png"))
+
+
+def outputs(args) -> list:
+    """Everything `rangefuse demo` writes (checked by the command line before any work):
+    its folder, made if need be, and the track file and two figures in it."""
+    from ._io import Output
+    track, fig, diag = _paths(args)
+    return [Output(args.out, "--out", folder=True), Output(track, "--out"),
+            Output(fig, "--out"), Output(diag, "--out")]
+
+
 def _main(args) -> int:
+    from ._io import make_folder
     from .run import run
     from .plots import plot_diagnostics
 
     log = demo_log(args.log)
-    if os.path.exists(args.out) and not os.path.isdir(args.out):
-        raise InputError("--out must name a folder", file=args.out, field="--out")
-    os.makedirs(args.out, exist_ok=True)
-    track = os.path.join(args.out, args.log + ".track.h5")
+    make_folder(args.out)  # removed again if the demo is interrupted before it ends
+    track, fig, diag = _paths(args)
     res = run(log, out=track, smooth=True)
     print(res.summary())
     print("\n" + _fill(DEMO_NOTES[args.log]))
-    fig = os.path.join(args.out, args.log + ".png")
     res.plot(fig)
-    diag = os.path.join(args.out, args.log + ".diagnostics.png")
     plot_diagnostics(track, out=diag)
     print(f"\nwrote {track}\n      {fig}\n      {diag}")
     return 0

@@ -462,3 +462,17 @@ def test_an_output_name_too_long_for_its_temporary_file_is_refused_before_work(f
     code, _out, err = _cli(capsys, ["replay", folder / "run.h5", "-o", long])
     assert code == 2 and len(err) == 1 and "the file name is 248 bytes long" in err[0], err
     assert _listing(folder) == ["run.h5"]
+
+
+def test_an_interrupted_demo_leaves_no_folder_behind(tmp_path, capsys, monkeypatch):
+    # The demo makes its output folder; stopped before it ends, it removes it again with
+    # the files that would have gone in.
+    monkeypatch.setattr(plots, "plot_diagnostics", lambda *a, **k: (_ for _ in ()).throw(
+        KeyboardInterrupt()))
+    out = tmp_path / "demo-out"
+    code, _out, err = _cli(capsys, ["demo", "--out", out])
+    assert code == 130 and err == ["rangefuse demo: interrupted; no partial output was kept"]
+    assert not out.exists()
+    (tmp_path / "afile").write_text("x")
+    code, _out, err = _cli(capsys, ["demo", "--out", tmp_path / "afile"])
+    assert code == 2 and err[0].endswith("--out: is a file; expected a folder"), err
