@@ -20,7 +20,7 @@ from fusion.errors import InputError
 from fusion.sensors.adc import adc_quantisation_sigma_v, counts_to_volts
 from fusion.sensors.triangulation import SATURATING_INVERSE, TABLE, fit_report
 
-from ._io import write_atomic
+from ._io import FIGURE_SUFFIXES, write_atomic
 
 __all__ = ["register", "run", "read_pairs"]
 
@@ -235,15 +235,12 @@ def _plot_bytes(result, fmt, title):
 
 
 def _plot_format(path):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    ext = os.path.splitext(path)[1].lower().lstrip(".")
-    supported = FigureCanvasAgg(Figure()).get_supported_filetypes()
-    if ext not in supported:
+    """The figure format of `path` from its suffix, among those every --plot takes."""
+    ext = os.path.splitext(path)[1].lower()
+    if ext not in FIGURE_SUFFIXES:
         raise InputError(f"cannot tell the figure format from the name; expected one of "
-                         f".{', .'.join(sorted(supported))}", file=path, field="--plot")
-    return ext
+                         f"{', '.join(FIGURE_SUFFIXES)}", file=path, field="--plot")
+    return ext.lstrip(".")
 
 
 def run(args) -> int:

@@ -48,7 +48,7 @@ from fusion.rig import Rig
 
 from . import _window_stats as W
 from . import metrics as M
-from ._io import atomic_output, refuse_overwrite
+from ._io import atomic_output
 from .logfile import open_log
 from .run import (_DirStats, _SensorStats, _accumulate, _clean_truth, _rig_for, _truth_interp,
                   load_rig)
@@ -866,18 +866,22 @@ def _em_rounds(problem, values, ll, batches, run, max_rounds, tol):
                 break
             values, ll, batches = trial, ll_new, b_new
         if qkey in values:
+            top = [ll, None, None]  # the line search's best: loglik, values, batches
+
             def neg(logq):
                 # the line search is unbounded: each q it asks for is run brought into
                 # its search range, so every point run (and the best one the tuner
                 # returns) is one the search range allows
-                return -run(dict(values, **_within_bounds({qkey: math.exp(logq)},
-                                                          problem.params)))[0]
+                v = dict(values, **_within_bounds({qkey: math.exp(logq)}, problem.params))
+                ll_q, b_q = run(v)
+                if ll_q > top[0]:
+                    top[:] = [ll_q, v, b_q]  # kept, so the best is not run a second time
+                return -ll_q
             lq = math.log(values[qkey])
-            r = optimize.minimize_scalar(neg, bracket=(lq - 1.0, lq), bounds=None,
-                                         options={"xtol": 0.02, "maxiter": 30})
-            if -r.fun > ll:
-                values = dict(values, **_within_bounds({qkey: math.exp(r.x)}, problem.params))
-                ll, batches = run(values)
+            optimize.minimize_scalar(neg, bracket=(lq - 1.0, lq), bounds=None,
+                                     options={"xtol": 0.02, "maxiter": 30})
+            if top[1] is not None:
+                ll, values, batches = top
         if ll - ll_round <= tol * abs(ll):
             break
 
@@ -1398,8 +1402,9 @@ def register(sub):
 
 
 def _main(args) -> int:
+    # (-o and --plot were checked by the command line before any work: not an input, one
+    # path each, a folder that takes files)
     inputs = list(args.logs) + ([args.rig] if args.rig else [])
-    refuse_overwrite(args.out, inputs)
     try:
         res = tune(args.logs, rig=args.rig, objective=args.objective, params=args.param,
                    latency=args.latency, max_evals=args.max_evals,
