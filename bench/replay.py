@@ -198,7 +198,9 @@ def _write_like_track(columns, path, window=32768):
     from replay.run import _DECISION_COLS, _TRACK_COLS, _Appender, _ChunkWriter
     if os.path.exists(path):
         os.remove(path)
-    with h5py.File(path, "w", libver=LIBVER) as f, _ChunkWriter() as w:
+    # opened as replay.run opens its track file (no chunk cache: chunks are written whole)
+    with h5py.File(path, "w", libver=LIBVER, track_order=True, rdcc_nbytes=0) as f, \
+            _ChunkWriter() as w:
         apps = {g: _Appender(f.create_group(g), _DECISION_COLS if g == "decisions"
                              else _TRACK_COLS, w) for g in columns}
         longest = max(len(next(iter(c.values()))) for c in columns.values())

@@ -23,7 +23,6 @@ from fusion.errors import (CalibrationError, ConfigError, InputError, LogFormatE
 from fusion.fuser import Fuser
 from fusion.rig import Rig
 from fusion.sensors.triangulation import TriangulationCurve
-from replay.check import check_log
 from replay.cli import COMMANDS, main
 from replay.csvimport import import_csv
 from replay.logfile import SensorStream, open_log, write_log

@@ -24,7 +24,7 @@ import signal
 import h5py
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from fusion import decisions as D
