@@ -478,13 +478,18 @@ _WORSE_COVER = 0.05
 _NEES_NOTE = 2.0
 
 
+def _paired(before, after):
+    """``(direction, before_row, after_row)`` for the directions both rigs were scored on."""
+    for d, a in after.items():
+        b = before.get(d)
+        if a is not None and b is not None:
+            yield d, b, a
+
+
 def _worse_against_truth(before, after) -> str:
     """Words saying how the tuned rig is clearly worse against truth, or ''."""
     bad = []
-    for d, a in after.items():
-        b = before.get(d)
-        if a is None or b is None:
-            continue
+    for d, b, a in _paired(before, after):
         if a["rmse_m"] > _WORSE_RMSE * b["rmse_m"] + 1e-6:
             bad.append(f"direction {d}: RMSE {1e3 * b['rmse_m']:.1f} -> "
                        f"{1e3 * a['rmse_m']:.1f} mm")
@@ -501,10 +506,7 @@ def _worse_against_truth(before, after) -> str:
 def _nees_note(before, after) -> str:
     """A note where a direction's mean NEES more than doubled to above 2, or ''."""
     grown = []
-    for d, a in after.items():
-        b = before.get(d)
-        if a is None or b is None:
-            continue
+    for d, b, a in _paired(before, after):
         nb, na = b.get("nees", math.nan), a.get("nees", math.nan)
         if math.isfinite(nb) and math.isfinite(na) and na > _NEES_NOTE * max(nb, 1.0):
             grown.append(f"{d} {nb:.3g} -> {na:.3g} (2-sigma cover {100 * b['cover2']:.1f} -> "
