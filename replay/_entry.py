@@ -22,6 +22,7 @@ def main():
     from replay.cli import main as command
     code = command()
     for sig in (signal.SIGINT, signal.SIGTERM):
-        # started: an interrupt from here on is no longer "while starting"
-        signal.signal(sig, signal.SIG_DFL if sig == signal.SIGTERM else signal.default_int_handler)
+        # done: its outputs are in place and its lines printed; an interrupt while the
+        # interpreter shuts down would only turn a finished run into a failed one
+        signal.signal(sig, signal.SIG_IGN)
     return code
